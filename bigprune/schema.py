@@ -1,0 +1,20 @@
+"""What the graph stage stores, shared by every stage that reads it.
+
+Graph stage (``bigprune ingest``), row ``i`` of every array is the node with dense index ``i``
+(the node table's row order):
+
+- ``node_id.parquet``: one column ``node_id`` holding the user's ids (int64 or string);
+- ``split.npy`` (int8): one of the codes in ``SPLIT_CODES``, ``NO_SPLIT`` for null;
+- ``label.npy`` (int64): the class label, ``NO_LABEL`` where unknown;
+- ``indptr.npy`` (int64, n + 1) and ``indices.npy`` (int32 or int64): the symmetric adjacency
+  in CSR form, rows sorted, no self loops, no repeated edges;
+- ``weight.npy`` (float32, nnz): edge weights, present only when the edges had a weight column;
+- ``features.npy`` (float32, n x d): the input features (hop 0).
+
+Propagate stage (``bigprune propagate``): ``hop_1.npy`` ... ``hop_K.npy`` (float32, n x d) and
+``pagerank.npy`` (float64, n).
+"""
+NO_SPLIT = 0
+SPLIT_CODES = {"train": 1, "valid": 2, "test": 3}
+SPLIT_NAMES = {code: name for name, code in SPLIT_CODES.items()}
+NO_LABEL = -1

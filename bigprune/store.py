@@ -1,0 +1,207 @@
+"""The on-disk store: one directory, plain ``.npy`` arrays and Parquet tables, a JSON manifest.
+
+Each stage writes into a staging directory and commits by renaming it to ``<stage>-<token>``
+and then replacing ``manifest.json`` atomically; the manifest is the single commit point, so a
+stage that dies leaves the store exactly as it was.
+"""
+import json
+import os
+import shutil
+import time
+import uuid
+from pathlib import Path
+
+import numpy as np
+
+from . import __version__
+from .errors import InputError
+from .memory import peak_rss
+
+FORMAT_VERSION = 1
+MANIFEST = "manifest.json"
+STAGING = ".staging"
+# A committed stage makes the stages computed from it stale: they are dropped on commit.
+DOWNSTREAM = {"graph": ("propagate",), "propagate": ()}
+RUN_HINT = {"graph": "bigprune ingest", "propagate": "bigprune propagate"}
+
+
+class Store:
+    """A store directory; ``Store(path)`` opens it without touching the disk."""
+
+    def __init__(self, path):
+        self.path = Path(path)
+
+    # ---- reading ---------------------------------------------------------------------------
+    def manifest(self):
+        """The committed manifest (an empty one for a store that does not exist yet)."""
+        file = self.path / MANIFEST
+        if not file.exists():
+            return {"format_version": FORMAT_VERSION, "stages": {}}
+        try:
+            manifest = json.loads(file.read_text())
+        except (OSError, ValueError) as exc:
+            raise InputError(f"{file}: not a readable bigprune manifest ({exc})") from None
+        version = manifest.get("format_version")
+        if not isinstance(version, int) or version > FORMAT_VERSION:
+            raise InputError(f"{file}: store format version {version!r} is newer than this "
+                             f"bigprune understands ({FORMAT_VERSION}); upgrade bigprune")
+        return manifest
+
+    def entry(self, stage):
+        """The manifest entry of a committed stage; a clear error naming the command otherwise."""
+        if not self.path.is_dir():
+            raise InputError(f"--store {self.path}: no such store; create it with bigprune ingest")
+        entry = self.manifest()["stages"].get(stage)
+        if entry is None:
+            raise InputError(f"--store {self.path}: has no {stage} stage yet; run {RUN_HINT[stage]} first")
+        return entry
+
+    def stage_dir(self, stage):
+        return self.path / self.entry(stage)["dir"]
+
+    def load(self, stage, name, mmap=True):
+        """Array ``name`` of a committed stage, memory-mapped read-only by default."""
+        return np.load(self.stage_dir(stage) / f"{name}.npy", mmap_mode="r" if mmap else None)
+
+    def table(self, stage, name):
+        import pyarrow.parquet as pq
+
+        return pq.read_table(self.stage_dir(stage) / f"{name}.parquet")
+
+    # ---- writing ---------------------------------------------------------------------------
+    def begin(self, stage, params, inputs=None):
+        """A :class:`StageWriter` for ``stage``; use it as a context manager."""
+        return StageWriter(self, stage, params, inputs or {})
+
+
+class StageWriter:
+    """Collects one stage's outputs in a staging directory and commits them on success."""
+
+    def __init__(self, store, stage, params, inputs):
+        self.store, self.stage, self.params, self.inputs = store, stage, params, inputs
+        self.info = {}
+        self._created_store = False
+        self.path = None
+
+    def __enter__(self):
+        root = self.store.path
+        if root.exists() and not root.is_dir():
+            raise InputError(f"--store {root}: exists and is not a directory")
+        if not root.exists():
+            root.mkdir(parents=True)
+            self._created_store = True
+        self.store.manifest()  # refuse a store of a newer format before writing anything
+        _sweep_staging(root / STAGING)
+        token = f"{self.stage}-{os.getpid()}-{uuid.uuid4().hex[:8]}"
+        self.path = root / STAGING / token
+        self.path.mkdir(parents=True)
+        self._started = time.time()
+        return self
+
+    def array(self, name, shape, dtype):
+        """A writeable ``.npy`` memory map to fill in place."""
+        return np.lib.format.open_memmap(self.path / f"{name}.npy", mode="w+", dtype=dtype,
+                                         shape=tuple(int(s) for s in shape))
+
+    def save(self, name, values):
+        np.save(self.path / f"{name}.npy", np.ascontiguousarray(values))
+
+    def write_table(self, name, table):
+        import pyarrow.parquet as pq
+
+        pq.write_table(table, self.path / f"{name}.parquet")
+
+    def scratch(self):
+        """A directory for temporary files (DuckDB spill); removed at commit or failure."""
+        path = self.path / "scratch"
+        path.mkdir(exist_ok=True)
+        return path
+
+    def __exit__(self, exc_type, exc, tb):
+        root = self.store.path
+        if exc_type is not None:
+            shutil.rmtree(self.path, ignore_errors=True)
+            _remove_if_empty(root / STAGING)
+            if self._created_store:
+                shutil.rmtree(root, ignore_errors=True)
+            return False
+        shutil.rmtree(self.path / "scratch", ignore_errors=True)
+        self._commit()
+        return False
+
+    def _commit(self):
+        root = self.store.path
+        manifest = self.store.manifest()
+        final = self.path.name.split("-", 1)[0] + "-" + uuid.uuid4().hex[:12]
+        artifacts = {p.stem: _describe(p) for p in sorted(self.path.iterdir())}
+        _fsync_tree(self.path)
+        os.rename(self.path, root / final)
+        stages = manifest["stages"]
+        stale = [stages.pop(s)["dir"] for s in (self.stage, *DOWNSTREAM[self.stage]) if s in stages]
+        stages[self.stage] = {
+            "dir": final,
+            "params": self.params,
+            "inputs": self.inputs,
+            "artifacts": artifacts,
+            "info": self.info,
+            "tool_version": __version__,
+            "committed_at": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+            "seconds": round(time.time() - self._started, 3),
+            "peak_rss": peak_rss(),
+        }
+        manifest["format_version"] = FORMAT_VERSION
+        _write_json_atomic(root / MANIFEST, manifest)
+        for old in stale:
+            shutil.rmtree(root / old, ignore_errors=True)
+        _remove_if_empty(root / STAGING)
+
+
+def _describe(path):
+    if path.suffix == ".npy":
+        arr = np.load(path, mmap_mode="r")
+        return {"file": path.name, "shape": list(arr.shape), "dtype": str(arr.dtype)}
+    return {"file": path.name, "bytes": path.stat().st_size}
+
+
+def _write_json_atomic(path, payload):
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    with open(tmp, "w") as fh:
+        json.dump(payload, fh, indent=2, sort_keys=True)
+        fh.flush()
+        os.fsync(fh.fileno())
+    os.replace(tmp, path)
+
+
+def _fsync_tree(path):
+    for file in path.iterdir():
+        if file.is_file():
+            with open(file, "rb") as fh:
+                os.fsync(fh.fileno())
+
+
+def _sweep_staging(staging):
+    """Remove staging directories left by processes that no longer run."""
+    if not staging.is_dir():
+        return
+    for leftover in staging.iterdir():
+        parts = leftover.name.split("-")
+        pid = int(parts[1]) if len(parts) > 2 and parts[1].isdigit() else None
+        if pid is None or not _alive(pid):
+            shutil.rmtree(leftover, ignore_errors=True)
+
+
+def _alive(pid):
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def _remove_if_empty(path):
+    try:
+        path.rmdir()
+    except OSError:
+        pass
