@@ -1,0 +1,136 @@
+"""The ``bigprune`` command: parses options, calls one library function, prints a summary.
+
+Errors from the library arrive typed (``bigprune.errors``) and leave as one line on stderr with
+exit status 2 (bad input or usage) or 3 (the memory budget cannot work).
+"""
+import argparse
+import json
+import sys
+
+from . import __version__
+from .errors import BigpruneError
+from .memory import DEFAULT_BUDGET
+
+EXAMPLES = {
+    "demo": """examples:
+  bigprune demo --workdir /tmp/market
+  bigprune demo --workdir /tmp/market --nodes 200000 --seed 3""",
+    "ingest": """examples:
+  bigprune ingest --edges data/edges/ --nodes data/nodes.parquet --store store/
+  bigprune ingest --edges 'data/edges/day=*/*.parquet' --nodes nodes.parquet \\
+                  --features emb.npy --store store/ --memory-budget 8G --threads 2""",
+    "propagate": """examples:
+  bigprune propagate --store store/
+  bigprune propagate --store store/ --hops 3 --norm rw""",
+    "select": """examples:
+  bigprune select --store store/ --strategy kcenter --budget 0.05 --out picks.parquet
+  bigprune select --store store/ --strategy random --budget 5000 --seed 1 --out random.parquet""",
+}
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse with a one-line usage error (exit 2) instead of the usage block."""
+
+    def error(self, message):
+        self.exit(2, f"{self.prog}: error: {message} (see {self.prog} --help)\n")
+
+
+def _parser():
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument("--quiet", action="store_true", help="no progress bars")
+    common.add_argument("--memory-budget", default=DEFAULT_BUDGET, metavar="SIZE",
+                        help=f"peak memory this stage may use, e.g. 2G or 512MiB (default {DEFAULT_BUDGET})")
+    common.add_argument("--threads", type=int, default=None, metavar="N",
+                        help="worker threads (default: all available cores)")
+
+    parser = _Parser(prog="bigprune", description="Choose the few labelled nodes worth training a node "
+                     "classifier on: ingest a graph, smooth its features, select and report.")
+    parser.add_argument("--version", action="version", version=f"bigprune {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    fmt = argparse.RawDescriptionHelpFormatter
+
+    p = sub.add_parser("demo", parents=[common], formatter_class=fmt, epilog=EXAMPLES["demo"],
+                       help="generate the marketplace scenario and run the whole pipeline on it")
+    p.add_argument("--workdir", required=True, metavar="DIR", help="where the data, store and outputs go")
+    p.add_argument("--nodes", type=int, default=None, metavar="N", help="listings to generate")
+    p.add_argument("--seed", type=int, default=0, metavar="S", help="random seed (default 0)")
+
+    p = sub.add_parser("ingest", parents=[common], formatter_class=fmt, epilog=EXAMPLES["ingest"],
+                       help="turn Parquet edge partitions and a node table into a store")
+    p.add_argument("--edges", required=True, metavar="PATH", help="Parquet file, directory or glob (src, dst[, weight])")
+    p.add_argument("--nodes", required=True, metavar="PATH", help="Parquet node table (node_id, split, label, features)")
+    p.add_argument("--features", default=None, metavar="FILE.npy", help="features aligned with the node table's rows")
+    p.add_argument("--store", required=True, metavar="DIR", help="store directory (created if missing)")
+
+    p = sub.add_parser("propagate", parents=[common], formatter_class=fmt, epilog=EXAMPLES["propagate"],
+                       help="smooth features over the graph (SGC hops) and compute PageRank")
+    p.add_argument("--store", required=True, metavar="DIR")
+    p.add_argument("--hops", type=int, default=2, metavar="K", help="propagation hops (default 2)")
+    p.add_argument("--norm", default="sym", choices=["sym", "rw"],
+                   help="sym: D^-1/2 (A+I) D^-1/2 (default); rw: D^-1 (A+I)")
+
+    p = sub.add_parser("select", parents=[common], formatter_class=fmt, epilog=EXAMPLES["select"],
+                       help="pick a training subset and report what it covers")
+    p.add_argument("--store", required=True, metavar="DIR")
+    p.add_argument("--strategy", required=True, metavar="NAME",
+                   help="kcenter, kcenter-pool, random, degree or pagerank")
+    p.add_argument("--budget", required=True, metavar="B",
+                   help="a fraction of the training pool (0 < B < 1) or a count (integer >= 1)")
+    p.add_argument("--targets", default="test", metavar="SPLIT",
+                   help="nodes to cover: test (default), valid or unlabeled")
+    p.add_argument("--seed", type=int, default=0, metavar="S")
+    p.add_argument("--out", required=True, metavar="FILE.parquet",
+                   help="selection table; the report goes beside it as FILE.json")
+    return parser
+
+
+def _run(args):
+    opts = {"memory_budget": args.memory_budget, "threads": args.threads}
+    if args.command == "demo":
+        from .demo import demo
+
+        return demo(args.workdir, nodes=args.nodes, seed=args.seed, **opts)
+    if args.command == "ingest":
+        from .ingest import ingest
+
+        return ingest(args.edges, args.nodes, args.store, features=args.features, **opts)
+    if args.command == "propagate":
+        from .propagate import propagate
+
+        return propagate(args.store, hops=args.hops, norm=args.norm, **opts)
+    from .select import select
+
+    report = select(args.store, args.strategy, args.budget, targets=args.targets, seed=args.seed,
+                    out=args.out, **opts)
+    return {k: v for k, v in report.items() if not k.startswith("_")}
+
+
+def main(argv=None):
+    parser = _parser()
+    args = parser.parse_args(argv)
+    if args.command is None:
+        parser.print_help()
+        return 2
+    from .runtime import set_quiet
+
+    set_quiet(args.quiet)
+    try:
+        result = _run(args)
+    except BigpruneError as exc:
+        print(f"bigprune {args.command}: error: {exc}", file=sys.stderr)
+        return exc.exit_code
+    except MemoryError:
+        print(f"bigprune {args.command}: error: out of memory; lower the data size or raise "
+              "--memory-budget", file=sys.stderr)
+        return 3
+    except KeyboardInterrupt:
+        print(f"bigprune {args.command}: interrupted; the store keeps its last committed state",
+              file=sys.stderr)
+        return 130
+    if args.command != "demo":
+        print(json.dumps(result, indent=2, default=str))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

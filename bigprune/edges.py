@@ -1,0 +1,137 @@
+"""Streaming the edge partitions through DuckDB: id mapping, checks, and the CSR build."""
+import numpy as np
+import pyarrow as pa
+
+from .errors import InputError
+from .kernels.csr import compact_rows, count_endpoints, scatter_edges, sort_unique_rows
+from .runtime import progress
+from .sources import id_kind, is_numeric, open_parquet
+
+# Per input edge row while building: u, v (int64 as DuckDB returns them, then int32/int64 kept),
+# optional weight, and two CSR slots (index + weight) for the symmetric copy.
+BYTES_PER_EDGE_ROW = 8 + 8 + 4 + 2 * (8 + 4)
+
+
+class EdgeFiles:
+    """The checked ``--edges`` partitions: same columns and id type in every file."""
+
+    def __init__(self, files, node_id_kind):
+        self.files = files
+        self.rows = 0
+        self.weighted = None
+        for path in files:
+            meta = open_parquet(path, "--edges")
+            schema = meta.schema_arrow
+            for column in ("src", "dst"):
+                if column not in schema.names:
+                    raise InputError(f"--edges {path}: missing column {column!r} "
+                                     f"(needs src, dst and optionally weight; has {', '.join(schema.names)})")
+                kind = id_kind(schema.field(column).type)
+                if kind != node_id_kind:
+                    raise InputError(f"--edges {path}: column {column!r} has type {schema.field(column).type} "
+                                     f"but node_id in --nodes is {node_id_kind}; ids must have one type")
+            has_weight = "weight" in schema.names
+            if has_weight and not is_numeric(schema.field("weight").type):
+                raise InputError(f"--edges {path}: column 'weight' has type {schema.field('weight').type}; "
+                                 "use positive numbers")
+            if self.weighted is None:
+                self.weighted = has_weight
+            elif has_weight != self.weighted:
+                raise InputError(f"--edges {path}: {'has' if has_weight else 'lacks'} a 'weight' column "
+                                 f"unlike {files[0]}; every partition needs the same columns")
+            self.rows += meta.metadata.num_rows
+        if self.rows == 0:
+            raise InputError(f"--edges {files[0] if len(files) == 1 else files[0].parent}: "
+                             "the edge partitions hold no rows")
+
+    def sql_source(self):
+        names = ", ".join("'" + str(p).replace("'", "''") + "'" for p in self.files)
+        return f"read_parquet([{names}], filename = true, file_row_number = true)"
+
+
+def build_csr(con, edges, node_count, index_dtype, writer, batch_rows):
+    """Map ids to rows, symmetrise, drop loops, merge repeats; write indptr/indices(/weight).
+
+    ``con`` is a DuckDB connection holding the id map as table ``idmap(id, idx)``.
+    Returns a dict of counts for the manifest.
+    """
+    weight_sql = "e.weight::FLOAT AS w" if edges.weighted else "NULL::FLOAT AS w"
+    query = (f"SELECT s.idx AS u, d.idx AS v, {weight_sql} FROM {edges.sql_source()} AS e "
+             "LEFT JOIN idmap AS s ON e.src = s.id LEFT JOIN idmap AS d ON e.dst = d.id")
+    u_all = np.empty(edges.rows, dtype=index_dtype)
+    v_all = np.empty(edges.rows, dtype=index_dtype)
+    w_all = np.empty(edges.rows if edges.weighted else 0, dtype=np.float32)
+    counts = np.zeros(node_count, dtype=np.int64)
+    loops, filled = 0, 0
+    reader = con.sql(query).to_arrow_reader(batch_rows)
+    with progress(total=edges.rows, desc="ingest edges", unit="edge") as bar:
+        for batch in reader:
+            u_col, v_col = batch.column(0), batch.column(1)
+            if u_col.null_count or v_col.null_count:
+                reader.close()
+                _explain_unmapped(con, edges)
+            u = u_col.to_numpy().astype(index_dtype, copy=False)
+            v = v_col.to_numpy().astype(index_dtype, copy=False)
+            stop = filled + len(u)
+            u_all[filled:stop], v_all[filled:stop] = u, v
+            if edges.weighted:
+                w = batch.column(2).to_numpy(zero_copy_only=False)
+                if not np.all(w > 0):  # also false for NaN and null
+                    reader.close()
+                    _explain_weight(con, edges)
+                w_all[filled:stop] = w
+            loops += count_endpoints(u, v, counts)
+            filled = stop
+            bar.update(len(u))
+    if filled == loops:
+        raise InputError(f"--edges: all {filled} edge rows are self loops; the graph has no edges")
+    indptr = np.zeros(node_count + 1, dtype=np.int64)
+    np.cumsum(counts, out=indptr[1:])
+    del counts
+    nnz = int(indptr[-1])
+    indices = np.empty(nnz, dtype=index_dtype)
+    weights = np.empty(nnz if edges.weighted else 0, dtype=np.float32)
+    scatter_edges(u_all, v_all, w_all, indptr[:-1].copy(), indices, weights)
+    del u_all, v_all, w_all
+    kept = np.empty(node_count, dtype=np.int64)
+    sort_unique_rows(indptr, indices, weights, kept)
+    new_indptr = np.empty_like(indptr)
+    compact_rows(indptr, kept, indices, weights, new_indptr)
+    unique = int(new_indptr[-1])
+    writer.save("indptr", new_indptr)
+    writer.save("indices", indices[:unique])
+    if edges.weighted:
+        writer.save("weight", weights[:unique])
+    return {"edge_rows": int(filled), "self_loops_dropped": int(loops),
+            "undirected_edges": unique // 2, "repeats_merged": int(filled - loops - unique // 2)}
+
+
+def _explain_unmapped(con, edges):
+    """Find the first edge row whose src or dst is null or not in the node table, and say so."""
+    row = con.execute(
+        f"SELECT e.filename, e.file_row_number, e.src, e.dst, s.idx IS NULL AS bad_src "
+        f"FROM {edges.sql_source()} AS e LEFT JOIN idmap AS s ON e.src = s.id "
+        f"LEFT JOIN idmap AS d ON e.dst = d.id WHERE s.idx IS NULL OR d.idx IS NULL "
+        f"ORDER BY e.filename, e.file_row_number LIMIT 1").fetchone()
+    file, index, src, dst, bad_src = row
+    column, value = ("src", src) if bad_src else ("dst", dst)
+    if value is None:
+        raise InputError(f"--edges {file}: column {column!r} is null at row {index}")
+    raise InputError(f"--edges {file}: row {index} column {column!r} names node {value!r}, "
+                     "which is not in --nodes")
+
+
+def _explain_weight(con, edges):
+    row = con.execute(
+        f"SELECT filename, file_row_number, weight FROM {edges.sql_source()} "
+        f"WHERE weight IS NULL OR isnan(weight::DOUBLE) OR weight <= 0 "
+        f"ORDER BY filename, file_row_number LIMIT 1").fetchone()
+    file, index, value = row
+    raise InputError(f"--edges {file}: column 'weight' row {index} holds {value}; weights must be > 0")
+
+
+def register_ids(con, ids, index_dtype):
+    """Give DuckDB the id map ``idmap(id, idx)``: node table row order is the dense index."""
+    table = pa.table({"id": ids, "idx": pa.array(np.arange(len(ids), dtype=index_dtype))})
+    con.register("idmap", table)
+    return table

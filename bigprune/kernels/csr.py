@@ -1,0 +1,97 @@
+"""Kernels that turn a stream of (u, v, w) edge rows into a symmetric CSR adjacency."""
+import numpy as np
+from numba import njit, prange
+
+
+@njit(cache=True)
+def count_endpoints(u, v, counts):
+    """Add each non-loop edge to both endpoints' counts; return the number of self loops.
+
+    u, v : int64 (e,), read. counts : int64 (n,), filled (incremented).
+    """
+    loops = 0
+    for i in range(u.shape[0]):
+        a, b = u[i], v[i]
+        if a == b:
+            loops += 1
+        else:
+            counts[a] += 1
+            counts[b] += 1
+    return loops
+
+
+@njit(cache=True)
+def scatter_edges(u, v, w, cursor, indices, weights):
+    """Write each non-loop edge into both endpoints' rows, advancing ``cursor``.
+
+    u, v : int (e,), read. w : float32 (e,) or (0,) when unweighted, read.
+    cursor : int64 (n,), the next free slot of each row, updated.
+    indices : int32/int64 (nnz,), filled. weights : float32 (nnz,) or (0,), filled.
+    """
+    weighted = weights.shape[0] > 0
+    for i in range(u.shape[0]):
+        a, b = u[i], v[i]
+        if a == b:
+            continue
+        pa, pb = cursor[a], cursor[b]
+        indices[pa] = b
+        indices[pb] = a
+        if weighted:
+            weights[pa] = w[i]
+            weights[pb] = w[i]
+        cursor[a] = pa + 1
+        cursor[b] = pb + 1
+
+
+@njit(parallel=True, cache=True)
+def sort_unique_rows(indptr, indices, weights, kept):
+    """Sort each row's neighbours and merge repeats in place (a repeat keeps its largest weight).
+
+    indptr : int64 (n + 1,), read. indices : (nnz,), rewritten: row r's unique neighbours start at
+    ``indptr[r]``. weights : float32 (nnz,) or (0,), rewritten alongside. kept : int64 (n,), filled
+    with each row's unique count.
+    """
+    weighted = weights.shape[0] > 0
+    for r in prange(indptr.shape[0] - 1):
+        start, stop = indptr[r], indptr[r + 1]
+        if stop - start == 0:
+            kept[r] = 0
+            continue
+        row = indices[start:stop]
+        order = np.argsort(row, kind="mergesort")
+        cols = row[order].copy()
+        if weighted:
+            ws = weights[start:stop][order].copy()
+        out = start
+        indices[out] = cols[0]
+        if weighted:
+            weights[out] = ws[0]
+        for j in range(1, cols.shape[0]):
+            if cols[j] == indices[out]:
+                if weighted and ws[j] > weights[out]:
+                    weights[out] = ws[j]
+                continue
+            out += 1
+            indices[out] = cols[j]
+            if weighted:
+                weights[out] = ws[j]
+        kept[r] = out - start + 1
+
+
+@njit(cache=True)
+def compact_rows(indptr, kept, indices, weights, new_indptr):
+    """Close the gaps left by merged repeats, moving rows left in order.
+
+    indptr : int64 (n + 1,), read. kept : int64 (n,), read. indices, weights : rewritten in place.
+    new_indptr : int64 (n + 1,), filled.
+    """
+    weighted = weights.shape[0] > 0
+    new_indptr[0] = 0
+    for r in range(kept.shape[0]):
+        src, dst, count = indptr[r], new_indptr[r], kept[r]
+        if src != dst:
+            for j in range(count):
+                indices[dst + j] = indices[src + j]
+                if weighted:
+                    weights[dst + j] = weights[src + j]
+        new_indptr[r + 1] = dst + count

@@ -1,0 +1,150 @@
+"""Ingest: Parquet in, CSR out, checked against networkx and scipy; bad input refused cleanly."""
+import hashlib
+from pathlib import Path
+
+import networkx as nx
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+import scipy.sparse as sp
+
+from bigprune.cli import main
+from bigprune.ingest import ingest
+from bigprune.store import Store
+
+
+def karate_files(root, id_type="int", weighted=False, repeat=True):
+    """networkx's copy of Zachary's karate club (Zachary, 1977) as our Parquet inputs."""
+    g = nx.karate_club_graph()
+    ids = np.arange(34, dtype=np.int64) * 1009 + 17
+    if id_type == "string":
+        ids = np.array([f"member-{i:04x}" for i in ids], dtype=object)
+    club = np.array([int(g.nodes[i]["club"] == "Officer") for i in range(34)])
+    split = ["train" if i % 3 else "test" for i in range(34)]
+    label = pa.array([int(club[i]) if split[i] == "train" else None for i in range(34)], pa.int64())
+    features = pa.array([[float(i), float(club[i])] for i in range(34)], pa.list_(pa.float32()))
+    pq.write_table(pa.table({"node_id": ids, "split": split, "label": label, "features": features}),
+                   root / "nodes.parquet")
+    edges = list(g.edges(data="weight"))
+    src = [ids[a] for a, _, _ in edges]
+    dst = [ids[b] for _, b, _ in edges]
+    w = [float(x) for _, _, x in edges]
+    if repeat:  # the same pair again, reversed, and a self loop: neither may change the graph
+        src, dst, w = src + [dst[0], ids[5]], dst + [src[0], ids[5]], w + [w[0], 1.0]
+    cols = {"src": src, "dst": dst}
+    if weighted:
+        cols["weight"] = w
+    table = pa.table(cols)
+    (root / "edges" / "day=1").mkdir(parents=True)
+    (root / "edges" / "day=2").mkdir(parents=True)
+    pq.write_table(table.slice(0, 40), root / "edges" / "day=1" / "part-0.parquet")
+    pq.write_table(table.slice(40), root / "edges" / "day=2" / "part-0.parquet")
+    return g, ids
+
+
+@pytest.mark.parametrize("id_type", ["int", "string"])
+@pytest.mark.parametrize("weighted", [False, True])
+def test_karate_club_matches_networkx(tmp_path, id_type, weighted):
+    g, ids = karate_files(tmp_path, id_type, weighted)
+    summary = ingest(tmp_path / "edges", tmp_path / "nodes.parquet", tmp_path / "store")
+    # reference: networkx ships the karate club with 34 members and 78 ties (Zachary, 1977)
+    assert summary["nodes"] == 34 and summary["undirected_edges"] == 78
+    assert summary["self_loops_dropped"] == 1 and summary["repeats_merged"] == 1
+    store = Store(tmp_path / "store")
+    indptr, indices = store.load("graph", "indptr"), store.load("graph", "indices")
+    data = store.load("graph", "weight") if weighted else np.ones(len(indices), np.float32)
+    ours = sp.csr_matrix((data, indices, indptr), shape=(34, 34))
+    # reference: networkx.to_scipy_sparse_array of the same graph, rows in node-table order
+    theirs = nx.to_scipy_sparse_array(g, nodelist=range(34), weight="weight" if weighted else None)
+    assert abs(ours - theirs).max() == 0
+    assert all(np.all(np.diff(indices[indptr[r]:indptr[r + 1]]) > 0) for r in range(34))
+    assert store.table("graph", "node_id").column("node_id").to_pylist() == list(ids)
+
+
+def test_features_from_npy(tmp_path):
+    karate_files(tmp_path)
+    feats = np.random.default_rng(0).normal(size=(34, 5))
+    np.save(tmp_path / "f.npy", feats)
+    ingest(tmp_path / "edges", tmp_path / "nodes.parquet", tmp_path / "store", features=tmp_path / "f.npy")
+    stored = Store(tmp_path / "store").load("graph", "features")
+    assert stored.dtype == np.float32 and np.allclose(stored, feats, atol=1e-6)
+
+
+def test_glob_and_single_file(tmp_path):
+    karate_files(tmp_path, repeat=False)
+    s1 = ingest(str(tmp_path / "edges" / "day=*" / "*.parquet"), tmp_path / "nodes.parquet", tmp_path / "s1")
+    s2 = ingest(tmp_path / "edges" / "day=1" / "part-0.parquet", tmp_path / "nodes.parquet", tmp_path / "s2")
+    assert s1["undirected_edges"] == 78 and s2["undirected_edges"] == 40
+
+
+def _digest(root):
+    h = hashlib.sha256()
+    for p in sorted(Path(root).rglob("*")):
+        h.update(str(p.relative_to(root)).encode())
+        if p.is_file():
+            h.update(p.read_bytes())
+    return h.hexdigest()
+
+
+def _rewrite(path, **changes):
+    table = pq.read_table(path)
+    for name, values in changes.items():
+        if values is None:
+            table = table.drop([name])
+        else:
+            table = table.set_column(table.schema.get_field_index(name), name, values)
+    pq.write_table(table, path)
+
+
+BAD_INPUTS = {
+    "missing column": (lambda r: _rewrite(r / "nodes.parquet", label=None),
+                       "missing column 'label'"),
+    "duplicate node ids": (lambda r: _rewrite(r / "nodes.parquet", node_id=pa.array(
+        [17] * 2 + list(range(2, 34)), pa.int64())), "repeats id 17"),
+    "unknown node in edges": (lambda r: _rewrite(r / "edges/day=2/part-0.parquet", src=pa.array(
+        [123456789] + pq.read_table(r / "edges/day=2/part-0.parquet").column("src").to_pylist()[1:],
+        pa.int64())), "names node 123456789, which is not in --nodes"),
+    "NaN feature": (lambda r: _rewrite(r / "nodes.parquet", features=pa.array(
+        [[float("nan"), 0.0]] + [[1.0, 0.0]] * 33, pa.list_(pa.float32()))),
+        "column 'features' row 0 value 0 is nan"),
+    "ragged features": (lambda r: _rewrite(r / "nodes.parquet", features=pa.array(
+        [[1.0, 0.0]] * 33 + [[1.0]], pa.list_(pa.float32()))), "row 33 has 1 values"),
+    "non-Parquet file": (lambda r: (r / "edges/day=2/notes.parquet").write_text("hello"),
+                         "not a readable Parquet file"),
+    "bad split value": (lambda r: _rewrite(r / "nodes.parquet", split=pa.array(["training"] * 34)),
+                        "column 'split' row 0 holds 'training'"),
+    "string ids in edges": (lambda r: _rewrite(r / "edges/day=1/part-0.parquet", src=pa.array(["a"] * 40)),
+                            "ids must have one type"),
+}
+
+
+@pytest.mark.parametrize("case", sorted(BAD_INPUTS))
+@pytest.mark.parametrize("fresh", [True, False])
+def test_bad_input_exits_2_and_keeps_store(tmp_path, capsys, case, fresh):
+    karate_files(tmp_path)
+    store = tmp_path / "store"
+    args = ["ingest", "--edges", str(tmp_path / "edges"), "--nodes", str(tmp_path / "nodes.parquet"),
+            "--store", str(store), "--quiet"]
+    if not fresh:
+        assert main(args) == 0
+        before = _digest(store)
+    capsys.readouterr()
+    damage, expected = BAD_INPUTS[case]
+    damage(tmp_path)
+    assert main(args) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and expected in err and "Traceback" not in err
+    if fresh:
+        assert not store.exists()
+    else:
+        assert _digest(store) == before
+
+
+def test_budget_too_small_exits_3(tmp_path, capsys):
+    karate_files(tmp_path)
+    code = main(["ingest", "--edges", str(tmp_path / "edges"), "--nodes", str(tmp_path / "nodes.parquet"),
+                 "--store", str(tmp_path / "store"), "--memory-budget", "100M"])
+    assert code == 3
+    assert "--memory-budget 100.0 MiB is too small for ingest" in capsys.readouterr().err
+    assert not (tmp_path / "store").exists()
