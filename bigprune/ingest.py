@@ -98,6 +98,7 @@ def _duckdb(spill_dir, memory_bytes, threads):
     con.execute(f"SET temp_directory = '{str(spill_dir)}'")
     con.execute(f"SET threads = {int(threads)}")
     con.execute("SET preserve_insertion_order = false")
+    con.execute("SET enable_progress_bar = false")
     return con
 
 
