@@ -22,6 +22,15 @@ EXAMPLES = {
     "propagate": """examples:
   bigprune propagate --store store/
   bigprune propagate --store store/ --hops 3 --norm rw""",
+    "run": """examples:
+  bigprune run job.toml
+  bigprune run job.toml --dry-run      # which stages would run, and why
+
+exit status: 0 done, 2 bad input or job file, 3 memory budget too small, 4 store in use""",
+    "status": """examples:
+  bigprune status --store store/""",
+    "check": """examples:
+  bigprune check job.toml""",
     "select": """examples:
   bigprune select --store store/ --strategy kcenter --budget 0.05 --out picks.parquet
   bigprune select --store store/ --strategy random --budget 5000 --seed 1 --out random.parquet""",
@@ -81,10 +90,32 @@ def _parser():
     p.add_argument("--seed", type=int, default=0, metavar="S")
     p.add_argument("--out", required=True, metavar="FILE.parquet",
                    help="selection table; the report goes beside it as FILE.json")
+    p = sub.add_parser("run", parents=[common], formatter_class=fmt, epilog=EXAMPLES["run"],
+                       help="run a job file: ingest, propagate, select, skipping what is current")
+    p.add_argument("job", metavar="JOB.toml")
+    p.add_argument("--dry-run", action="store_true", help="print the plan and change nothing")
+
+    p = sub.add_parser("check", parents=[common], formatter_class=fmt, epilog=EXAMPLES["check"],
+                       help="validate a job file and its inputs without computing")
+    p.add_argument("job", metavar="JOB.toml")
+
+    p = sub.add_parser("status", parents=[common], formatter_class=fmt, epilog=EXAMPLES["status"],
+                       help="show what a store holds, from which inputs, and when")
+    p.add_argument("--store", required=True, metavar="DIR")
     return parser
 
 
 def _run(args):
+    if args.command in ("run", "check", "status"):
+        from .job import check_job, run_job, store_status
+
+        if args.command == "run":
+            run_job(args.job, dry_run=args.dry_run)
+        elif args.command == "check":
+            check_job(args.job)
+        else:
+            print(store_status(args.store))
+        return None
     opts = {"memory_budget": args.memory_budget, "threads": args.threads}
     if args.command == "demo":
         from .demo import demo
@@ -127,7 +158,7 @@ def main(argv=None):
         print(f"bigprune {args.command}: interrupted; the store keeps its last committed state",
               file=sys.stderr)
         return 130
-    if args.command != "demo":
+    if result is not None and args.command != "demo":
         print(json.dumps(result, indent=2, default=str))
     return 0
 

@@ -17,3 +17,9 @@ class BudgetError(BigpruneError):
     """The memory budget cannot hold the planned work (exit 3)."""
 
     exit_code = 3
+
+
+class LockedError(BigpruneError):
+    """Another live process holds the store (exit 4: try again later)."""
+
+    exit_code = 4

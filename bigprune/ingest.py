@@ -7,6 +7,7 @@ import pyarrow as pa
 
 from .edges import BYTES_PER_EDGE_ROW, EdgeFiles, build_csr, register_ids
 from .errors import InputError
+from .fingerprint import fingerprints
 from .memory import DEFAULT_BUDGET, MIB, format_size, parse_size, peak_rss, require, working_memory
 from .nodetable import NodeTable, copy_npy_features
 from .runtime import set_threads
@@ -60,11 +61,11 @@ def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, thr
     require(budget, partitions.rows * BYTES_PER_EDGE_ROW + n * 64, "ingest of "
             f"{partitions.rows:,} edge rows")
     duck_bytes = max(256 * MIB, spare - partitions.rows * BYTES_PER_EDGE_ROW)
-    inputs = {"edges": _fingerprints(partitions.files), "nodes": _fingerprints([Path(nodes)])}
+    inputs = {"edges": fingerprints(partitions.files), "nodes": fingerprints([nodes])}
     if features is not None:
-        inputs["features"] = _fingerprints([Path(features)])
+        inputs["features"] = fingerprints([features])
     params = {"edges": str(edges), "nodes": str(nodes), "features": None if features is None else str(features)}
-    with store.begin("graph", params=params, inputs=inputs) as writer:
+    with store.locked(), store.begin("graph", params=params, inputs=inputs) as writer:
         chunk_bytes = max(16 * MIB, spare // 8)
         if features is None:
             out = writer.array("features", (n, table.feature_dim()), np.float32)
@@ -100,7 +101,3 @@ def _duckdb(spill_dir, memory_bytes, threads):
     con.execute("SET preserve_insertion_order = false")
     con.execute("SET enable_progress_bar = false")
     return con
-
-
-def _fingerprints(files):
-    return [{"path": str(p), "bytes": p.stat().st_size, "mtime": p.stat().st_mtime} for p in files]

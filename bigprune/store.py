@@ -7,19 +7,23 @@ stage that dies leaves the store exactly as it was.
 import json
 import os
 import shutil
+import socket
 import time
 import uuid
+from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
 
 from . import __version__
-from .errors import InputError
+from .errors import InputError, LockedError
 from .memory import peak_rss
 
 FORMAT_VERSION = 1
 MANIFEST = "manifest.json"
 STAGING = ".staging"
+LOCK = ".lock"
+_HELD = set()  # stores this process has locked (a locked job calls locked stages)
 # A committed stage makes the stages computed from it stale: they are dropped on commit.
 DOWNSTREAM = {"graph": ("propagate",), "propagate": ()}
 RUN_HINT = {"graph": "bigprune ingest", "propagate": "bigprune propagate"}
@@ -69,6 +73,37 @@ class Store:
         return pq.read_table(self.stage_dir(stage) / f"{name}.parquet")
 
     # ---- writing ---------------------------------------------------------------------------
+    @contextmanager
+    def locked(self):
+        """Hold the store's lock: a second run on the same store is refused with a clear line.
+
+        A lock left by a process that no longer runs on this host is taken over.
+        """
+        key = str(self.path.resolve())
+        if key in _HELD:
+            yield self
+            return
+        created = not self.path.exists()
+        self.path.mkdir(parents=True, exist_ok=True)
+        lock = self.path / LOCK
+        _take_lock(lock)
+        _HELD.add(key)
+        try:
+            yield self
+        finally:
+            _HELD.discard(key)
+            lock.unlink(missing_ok=True)
+            if created:
+                _remove_if_empty(self.path)
+
+    def record_output(self, path, key):
+        """Note in the manifest that ``path`` was written for job key ``key``."""
+        manifest = self.manifest()
+        manifest.setdefault("outputs", {})[str(Path(path).resolve())] = {
+            "key": key, "bytes": Path(path).stat().st_size,
+            "committed_at": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())}
+        _write_json_atomic(self.path / MANIFEST, manifest)
+
     def begin(self, stage, params, inputs=None):
         """A :class:`StageWriter` for ``stage``; use it as a context manager."""
         return StageWriter(self, stage, params, inputs or {})
@@ -154,6 +189,27 @@ class StageWriter:
         for old in stale:
             shutil.rmtree(root / old, ignore_errors=True)
         _remove_if_empty(root / STAGING)
+
+
+def _take_lock(lock):
+    me = f"{os.getpid()} {socket.gethostname()}"
+    for _ in range(2):
+        try:
+            fd = os.open(lock, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
+        except FileExistsError:
+            try:
+                pid, host = lock.read_text().split(" ", 1)
+            except (OSError, ValueError):
+                pid, host = "0", socket.gethostname()
+            if host.strip() == socket.gethostname() and not _alive(int(pid)):
+                lock.unlink(missing_ok=True)  # stale: its process is gone
+                continue
+            raise LockedError(f"--store {lock.parent}: in use by process {pid} on {host.strip()} "
+                             f"(lock file {lock}); wait for it to finish") from None
+        with os.fdopen(fd, "w") as fh:
+            fh.write(me)
+        return
+    raise InputError(f"--store {lock.parent}: could not take the lock {lock}")
 
 
 def _describe(path):

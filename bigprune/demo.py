@@ -1,0 +1,92 @@
+"""The demo: a generated second-hand marketplace, run through the nightly job.
+
+It writes ``WORKDIR/job.toml`` and runs it, so ``bigprune run WORKDIR/job.toml`` repeats the
+demo's job and skips what is already done.
+"""
+import json
+import shutil
+import time
+from pathlib import Path
+
+from .errors import InputError
+from .job import run_job
+from .memory import DEFAULT_BUDGET, format_size, peak_rss
+from .scenario import generate
+
+DEMO_NODES = 100_000
+DEMO_BUDGET = 0.02
+DEMO_STRATEGIES = ("kcenter", "kcenter-pool", "random", "degree", "pagerank")
+STAMP = "demo-params.json"
+
+
+def demo(workdir, nodes=None, seed=0, memory_budget=DEFAULT_BUDGET, threads=None, echo=print):
+    """Generate the marketplace under ``workdir``, write ``job.toml`` and run it.
+
+    Returns the selection reports keyed by strategy.
+    """
+    nodes = DEMO_NODES if nodes is None else nodes
+    if nodes < 1000:
+        raise InputError(f"--nodes {nodes}: the demo needs at least 1000 listings")
+    root = Path(workdir)
+    if root.exists() and not root.is_dir():
+        raise InputError(f"--workdir {workdir}: exists and is not a directory")
+    started = time.time()
+    data = root / "data"
+    params = {"nodes": nodes, "seed": seed}
+    stamp = data / STAMP
+    if stamp.exists() and json.loads(stamp.read_text()) == params:
+        echo(f"[data] reusing the generated marketplace in {data}")
+    else:
+        if data.exists():
+            shutil.rmtree(data)  # our own generated files from an earlier demo run
+        echo(f"[data] generating a marketplace of {nodes:,} listings in {data}")
+        generate(data, nodes=nodes, seed=seed)
+        stamp.write_text(json.dumps(params))
+    job = root / "job.toml"
+    job.write_text(_job_text(memory_budget, threads, seed))
+    echo(f"[job]  {job}")
+    steps = run_job(job, echo=lambda line: echo("       " + line))
+    reports = {}
+    for strategy in DEMO_STRATEGIES:
+        report = root / "selections" / f"{strategy}.json"
+        reports[strategy] = json.loads(report.read_text())
+    echo("")
+    echo(f"{DEMO_BUDGET:.0%} of the moderated listings, chosen to cover this week's listings "
+         "(distances in the 2-hop smoothed embedding):")
+    echo(_table(reports))
+    echo("")
+    echo(f"selections and reports: {root / 'selections'}")
+    echo(f"answers for this week's listings (selection never reads them): {data / 'answers.parquet'}")
+    echo(f"rerun the same job: bigprune run {job}")
+    ran = sum(step["run"] for step in steps)
+    echo(f"done in {time.time() - started:.0f} s ({ran} of {len(steps)} steps ran), "
+         f"peak memory {format_size(peak_rss())}")
+    echo(f"caution: {reports['kcenter']['caution']}")
+    return reports
+
+
+def _job_text(memory_budget, threads, seed):
+    lines = ['# Written by bigprune demo; rerun with: bigprune run job.toml', 'store = "store"',
+             f'memory_budget = "{memory_budget}"']
+    if threads is not None:
+        lines.append(f"threads = {int(threads)}")
+    lines += ["", "[ingest]", 'edges = "data/edges"', 'nodes = "data/nodes.parquet"', "",
+              "[propagate]", "hops = 2", 'norm = "sym"']
+    for strategy in DEMO_STRATEGIES:
+        lines += ["", "[[select]]", f'strategy = "{strategy}"', f"budget = {DEMO_BUDGET}", f"seed = {seed}",
+                  f'out = "selections/{strategy}.parquet"']
+    return "\n".join(lines) + "\n"
+
+
+def _table(reports):
+    header = (f"{'strategy':<14}{'picked':>8}{'radius':>9}{'mean':>8}{'p90':>8}{'classes':>9}"
+              f"{'degree':>8}{'homophily':>11}")
+    lines = [header, "-" * len(header)]
+    for name, r in reports.items():
+        cov, sel = r["coverage"], r["diagnostics"]["selected"]
+        lines.append(f"{name:<14}{r['selected']:>8,}{cov['radius']:>9.3f}{cov['mean']:>8.3f}{cov['p90']:>8.3f}"
+                     f"{len(r['classes']):>9}{sel['degree']:>8.1f}{sel['homophily']:>11.2f}")
+    first = next(iter(reports.values()))
+    pool = first["diagnostics"]["pool"]
+    lines.append(f"{'(whole pool)':<14}{first['pool']:>8,}{'':>34}{pool['degree']:>8.1f}{pool['homophily']:>11.2f}")
+    return "\n".join(lines)
