@@ -70,6 +70,8 @@ def _parser():
     p.add_argument("--nodes", required=True, metavar="PATH", help="Parquet node table (node_id, split, label, features)")
     p.add_argument("--features", default=None, metavar="FILE.npy", help="features aligned with the node table's rows")
     p.add_argument("--store", required=True, metavar="DIR", help="store directory (created if missing)")
+    p.add_argument("--drop-unknown", action="store_true",
+                   help="drop edge rows naming nodes missing from --nodes (counted) instead of refusing")
 
     p = sub.add_parser("propagate", parents=[common], formatter_class=fmt, epilog=EXAMPLES["propagate"],
                        help="smooth features over the graph (SGC hops) and compute PageRank")
@@ -124,7 +126,8 @@ def _run(args):
     if args.command == "ingest":
         from .ingest import ingest
 
-        return ingest(args.edges, args.nodes, args.store, features=args.features, **opts)
+        return ingest(args.edges, args.nodes, args.store, features=args.features,
+                      drop_unknown=args.drop_unknown, **opts)
     if args.command == "propagate":
         from .propagate import propagate
 

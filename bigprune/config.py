@@ -31,7 +31,8 @@ from .memory import DEFAULT_BUDGET
 # key: (type, required, default); "path" values are resolved against the file's folder.
 TOP = {"store": ("path", True, None), "memory_budget": ("size", False, DEFAULT_BUDGET),
        "threads": ("int", False, None), "log": ("path", False, None)}
-INGEST = {"edges": ("path", True, None), "nodes": ("path", True, None), "features": ("path", False, None)}
+INGEST = {"edges": ("path", True, None), "nodes": ("path", True, None), "features": ("path", False, None),
+          "drop_unknown": ("bool", False, False)}
 PROPAGATE = {"hops": ("int", False, 2), "norm": ("str", False, "sym")}
 SELECT = {"strategy": ("str", True, None), "budget": ("number", True, None), "targets": ("str", False, "test"),
           "seed": ("int", False, 0), "out": ("path", True, None)}
@@ -41,11 +42,12 @@ LISTS = {"select": SELECT}
 _CHECKS = {
     "int": lambda v: isinstance(v, int) and not isinstance(v, bool),
     "number": lambda v: isinstance(v, (int, float)) and not isinstance(v, bool),
+    "bool": lambda v: isinstance(v, bool),
     "str": lambda v: isinstance(v, str),
     "path": lambda v: isinstance(v, str) and v != "",
     "size": lambda v: isinstance(v, (str, int)) and not isinstance(v, bool),
 }
-_WANTED = {"int": "an integer", "number": "a number", "str": "a string", "path": "a path string",
+_WANTED = {"bool": "true or false", "int": "an integer", "number": "a number", "str": "a string", "path": "a path string",
            "size": "a size such as \"4GiB\""}
 
 

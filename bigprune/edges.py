@@ -1,6 +1,7 @@
 """Streaming the edge partitions through DuckDB: id mapping, checks, and the CSR build."""
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute  # noqa: F401  (pa.compute)
 
 from .errors import InputError
 from .kernels.csr import compact_rows, count_endpoints, scatter_edges, sort_unique_rows
@@ -39,21 +40,21 @@ class EdgeFiles:
             elif has_weight != self.weighted:
                 raise InputError(f"--edges {path}: {'has' if has_weight else 'lacks'} a 'weight' column "
                                  f"unlike {files[0]}; every partition needs the same columns")
+            if meta.metadata.num_rows == 0:
+                raise InputError(f"--edges {path}: the partition holds no rows; remove it or fill it")
             self.rows += meta.metadata.num_rows
-        if self.rows == 0:
-            raise InputError(f"--edges {files[0] if len(files) == 1 else files[0].parent}: "
-                             "the edge partitions hold no rows")
 
     def sql_source(self):
         names = ", ".join("'" + str(p).replace("'", "''") + "'" for p in self.files)
         return f"read_parquet([{names}], filename = true, file_row_number = true)"
 
 
-def build_csr(con, edges, node_count, index_dtype, writer, batch_rows):
+def build_csr(con, edges, node_count, index_dtype, writer, batch_rows, drop_unknown=False):
     """Map ids to rows, symmetrise, drop loops, merge repeats; write indptr/indices(/weight).
 
-    ``con`` is a DuckDB connection holding the id map as table ``idmap(id, idx)``.
-    Returns a dict of counts for the manifest.
+    ``con`` is a DuckDB connection holding the id map as table ``idmap(id, idx)``. Edge rows
+    naming a node missing from the node table are an error, or dropped and counted with
+    ``drop_unknown``. Returns a dict of counts for the manifest.
     """
     weight_sql = "e.weight::FLOAT AS w" if edges.weighted else "NULL::FLOAT AS w"
     query = (f"SELECT s.idx AS u, d.idx AS v, {weight_sql} FROM {edges.sql_source()} AS e "
@@ -62,14 +63,18 @@ def build_csr(con, edges, node_count, index_dtype, writer, batch_rows):
     v_all = np.empty(edges.rows, dtype=index_dtype)
     w_all = np.empty(edges.rows if edges.weighted else 0, dtype=np.float32)
     counts = np.zeros(node_count, dtype=np.int64)
-    loops, filled = 0, 0
+    loops, filled, dropped = 0, 0, 0
     reader = con.sql(query).to_arrow_reader(batch_rows)
     with progress(total=edges.rows, desc="ingest edges", unit="edge") as bar:
         for batch in reader:
+            if batch.column(0).null_count or batch.column(1).null_count:
+                if not drop_unknown:
+                    reader.close()
+                    _explain_unmapped(con, edges)
+                known = pa.compute.and_(batch.column(0).is_valid(), batch.column(1).is_valid())
+                dropped += len(batch) - pa.compute.sum(known).as_py()
+                batch = batch.filter(known)
             u_col, v_col = batch.column(0), batch.column(1)
-            if u_col.null_count or v_col.null_count:
-                reader.close()
-                _explain_unmapped(con, edges)
             u = u_col.to_numpy().astype(index_dtype, copy=False)
             v = v_col.to_numpy().astype(index_dtype, copy=False)
             stop = filled + len(u)
@@ -84,7 +89,8 @@ def build_csr(con, edges, node_count, index_dtype, writer, batch_rows):
             filled = stop
             bar.update(len(u))
     if filled == loops:
-        raise InputError(f"--edges: all {filled} edge rows are self loops; the graph has no edges")
+        raise InputError(f"--edges: none of the {edges.rows} edge rows joins two different known nodes; "
+                         "the graph has no edges")
     indptr = np.zeros(node_count + 1, dtype=np.int64)
     np.cumsum(counts, out=indptr[1:])
     del counts
@@ -102,7 +108,7 @@ def build_csr(con, edges, node_count, index_dtype, writer, batch_rows):
     writer.save("indices", indices[:unique])
     if edges.weighted:
         writer.save("weight", weights[:unique])
-    return {"edge_rows": int(filled), "self_loops_dropped": int(loops),
+    return {"edge_rows": int(filled + dropped), "unknown_dropped": int(dropped), "self_loops_dropped": int(loops),
             "undirected_edges": unique // 2, "repeats_merged": int(filled - loops - unique // 2)}
 
 

@@ -15,7 +15,8 @@ from .sources import edge_files
 from .store import Store
 
 
-def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, threads=None):
+def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, threads=None,
+           drop_unknown=False):
     """Build the graph stage of ``store`` from Parquet edges and a node table.
 
     Parameters
@@ -34,6 +35,8 @@ def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, thr
         Peak memory the stage may use (``"4GiB"``).
     threads : int, optional
         Threads for DuckDB and numba (default: all available cores).
+    drop_unknown : bool
+        Drop (and count) edge rows naming nodes missing from the node table instead of refusing.
 
     Returns
     -------
@@ -64,7 +67,8 @@ def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, thr
     inputs = {"edges": fingerprints(partitions.files), "nodes": fingerprints([nodes])}
     if features is not None:
         inputs["features"] = fingerprints([features])
-    params = {"edges": str(edges), "nodes": str(nodes), "features": None if features is None else str(features)}
+    params = {"edges": str(edges), "nodes": str(nodes), "drop_unknown": bool(drop_unknown),
+              "features": None if features is None else str(features)}
     with store.locked(), store.begin("graph", params=params, inputs=inputs) as writer:
         chunk_bytes = max(16 * MIB, spare // 8)
         if features is None:
@@ -81,7 +85,8 @@ def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, thr
         writer.save("label", table.label)
         con = _duckdb(writer.scratch(), duck_bytes, threads)
         register_ids(con, table.ids, index_dtype)
-        counts = build_csr(con, partitions, n, index_dtype, writer, batch_rows=1 << 20)
+        counts = build_csr(con, partitions, n, index_dtype, writer, batch_rows=1 << 20,
+                           drop_unknown=drop_unknown)
         con.close()
         summary = {"nodes": n, "feature_dim": dim, "weighted": bool(partitions.weighted),
                    "edge_files": len(partitions.files), **counts,

@@ -31,6 +31,8 @@ def plan_job(job):
     graph = stages.get("graph")
     if graph is None:
         why = "the store has no graph yet"
+    elif graph["params"].get("drop_unknown") != ingest["drop_unknown"]:
+        why = "drop_unknown changed"
     elif _comparable(graph.get("inputs")) != _comparable(inputs):
         why = _what_changed(graph.get("inputs", {}), inputs)
     else:
@@ -96,7 +98,8 @@ def run_job(path, dry_run=False, echo=print):
             try:
                 if step["stage"] == "ingest":
                     ing = job["ingest"]
-                    result = ingest(ing["edges"], ing["nodes"], store, features=ing["features"], **opts)
+                    result = ingest(ing["edges"], ing["nodes"], store, features=ing["features"],
+                                    drop_unknown=ing["drop_unknown"], **opts)
                 elif step["stage"] == "propagate":
                     result = propagate(store, **job["propagate"], **opts)
                 else:

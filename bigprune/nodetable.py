@@ -72,7 +72,15 @@ class NodeTable:
         if negative.size:
             raise InputError(f"--nodes {self.path}: column 'label' row {negative[0]} holds "
                              f"{label[negative[0]]}; labels are class ids >= 0")
-        return np.where(mask, NO_LABEL, label)
+        label = np.where(mask, NO_LABEL, label)
+        trained = set(np.unique(label[self.split == SPLIT_CODES["train"]]).tolist())
+        valid = label[self.split == SPLIT_CODES["valid"]]
+        orphans = sorted(set(np.unique(valid).tolist()) - trained)
+        if orphans:
+            row = int(np.flatnonzero((self.split == SPLIT_CODES["valid"]) & (label == orphans[0]))[0])
+            raise InputError(f"--nodes {self.path}: class {orphans[0]} (row {row}, split valid) has no "
+                             "train node; every class needs at least one train node")
+        return label
 
     def _check_ids(self):
         nulls = self.ids.null_count
