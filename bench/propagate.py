@@ -1,0 +1,208 @@
+"""One propagation hop: bigprune's numba kernel against scipy.sparse ``A @ X``.
+
+Builds a power-law graph (Chung-Lu: edge ends drawn with probability proportional to
+``rank**(-1 / (gamma - 1))``, node ids shuffled) straight into CSR with numpy, writes a graph
+store in a temporary directory, then runs one hop with each side in its own subprocess so that
+each reports its own peak RSS. bigprune's time is the stage's own figure for the hop (scaling X,
+the kernel, writing the output blocks into the store), with numba compiled beforehand on a tiny
+graph (cached); its peak RSS covers the whole stage, PageRank and imports included. scipy's time
+is the product alone, with the normalised matrix (self loops included, float32) built beforehand
+by this script and loaded whole.
+
+    python3 bench/propagate.py                          # 2M nodes, 20M edges, d = 64
+    python3 bench/propagate.py --nodes 200000 --edges 2000000
+"""
+import os
+import sys
+
+# Sibling benches are named after stages, and bench/select.py would shadow the standard library's
+# select module (which subprocess imports): keep this script's folder off the import path.
+_HERE = os.path.dirname(os.path.abspath(__file__))
+sys.path[:] = [p for p in sys.path if os.path.abspath(p or ".") != _HERE]
+
+import argparse  # noqa: E402
+import json  # noqa: E402
+import subprocess  # noqa: E402
+import tempfile  # noqa: E402
+import time  # noqa: E402
+from pathlib import Path  # noqa: E402
+
+import numpy as np  # noqa: E402
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+
+def main():
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--nodes", type=int, default=2_000_000)
+    parser.add_argument("--edges", type=int, default=20_000_000, help="undirected edges")
+    parser.add_argument("--dims", type=int, default=64)
+    parser.add_argument("--gamma", type=float, default=2.5, help="power-law degree exponent")
+    parser.add_argument("--order", choices=("random", "degree"), default="random",
+                        help="node order: shuffled ids, or by falling degree (better locality)")
+    parser.add_argument("--threads", type=int, default=None)
+    parser.add_argument("--seed", type=int, default=0)
+    parser.add_argument("--workdir", default=None, help="where to put the temporary store")
+    parser.add_argument("--side", choices=sorted(SIDES), help=argparse.SUPPRESS)
+    parser.add_argument("--store", help=argparse.SUPPRESS)
+    args = parser.parse_args()
+    if args.side:
+        print(json.dumps(SIDES[args.side](Path(args.store), args)))
+        return
+    with tempfile.TemporaryDirectory(dir=args.workdir, prefix="bench-propagate-") as tmp:
+        _compare(args, Path(tmp) / "store")
+
+
+def _compare(args, store):
+    # Every step runs in a child and this process stays small: Linux hands a child the parent's
+    # peak RSS at fork/exec, which would blur both sides' figures.
+    built = _side(args, "build", store)
+    print(f"graph: {args.nodes:,} nodes, {built['nnz'] // 2:,} undirected edges ({built['nnz']:,} "
+          f"CSR entries), d = {args.dims}, order {args.order}; built and written in "
+          f"{built['seconds']:.1f} s", flush=True)
+    load_before = os.getloadavg()[0]
+    ours = _side(args, "bigprune", store)
+    theirs = _side(args, "scipy", store)
+    # Other jobs on the machine slow either side unpredictably: show how busy it was.
+    print(f"load average (1 min) before / after the two runs: {load_before:.1f} / "
+          f"{os.getloadavg()[0]:.1f} on {os.cpu_count()} cores")
+    print(f"bigprune hop: {ours['hop_seconds']:.3f} s (whole stage with PageRank "
+          f"{ours['stage_seconds']:.1f} s, PageRank {ours['pagerank_seconds']:.1f} s in "
+          f"{ours['pagerank_steps']} steps), threads {ours['threads']}, peak RSS "
+          f"{ours['peak_rss'] / 2**30:.2f} GiB")
+    print(f"scipy hop:    {theirs['hop_seconds']:.3f} s, peak RSS "
+          f"{theirs['peak_rss'] / 2**30:.2f} GiB")
+    print(f"speed ratio (scipy time / bigprune time): "
+          f"{theirs['hop_seconds'] / ours['hop_seconds']:.2f}x")
+    print(f"max abs difference {theirs['max_abs_diff']:.2e} (largest |value| "
+          f"{theirs['max_abs']:.2f}): {'agree' if theirs['agree'] else 'DISAGREE'}")
+
+
+def _side(args, side, store):
+    command = [sys.executable, __file__, "--side", side, "--store", str(store)]
+    for option in ("nodes", "edges", "dims", "gamma", "order", "threads", "seed"):
+        if getattr(args, option) is not None:
+            command += [f"--{option}", str(getattr(args, option))]
+    done = subprocess.run(command, check=True, stdout=subprocess.PIPE, text=True)
+    return json.loads(done.stdout.strip().splitlines()[-1])
+
+
+def _build(store, args):
+    rng = np.random.default_rng(args.seed)
+    tic = time.perf_counter()
+    indptr, indices = power_law_csr(args.nodes, args.edges, args.gamma, args.order, rng)
+    write_store(store, indptr, indices,
+                rng.standard_normal((args.nodes, args.dims), dtype=np.float32))
+    write_normalised(store.parent, indptr, indices)
+    return {"nnz": int(indices.shape[0]), "seconds": time.perf_counter() - tic}
+
+
+def power_law_csr(n, edges, gamma, order, rng):
+    """A symmetric CSR (indptr int64, indices int32) of about ``edges`` distinct undirected edges."""
+    weight = np.arange(1, n + 1, dtype=np.float64) ** (-1.0 / (gamma - 1.0))
+    cdf = np.cumsum(weight)
+    cdf /= cdf[-1]
+    keys = np.empty(0, dtype=np.int64)
+    while keys.shape[0] < edges:  # repeats and loops are dropped, so draw until enough remain
+        draw = int((edges - keys.shape[0]) * 1.2) + 1000
+        u = np.searchsorted(cdf, rng.random(draw))
+        v = np.searchsorted(cdf, rng.random(draw))
+        keep = u != v
+        lo, hi = np.minimum(u[keep], v[keep]), np.maximum(u[keep], v[keep])
+        keys = np.unique(np.concatenate([keys, lo * n + hi]))
+    keys = rng.choice(keys, edges, replace=False) if keys.shape[0] > edges else keys
+    lo, hi = keys // n, keys % n
+    del keys
+    # Rank 0 has the highest expected degree: shuffle ids unless asked to keep degree order.
+    relabel = np.arange(n) if order == "degree" else rng.permutation(n)
+    lo, hi = relabel[lo], relabel[hi]
+    both = np.concatenate([lo * n + hi, hi * n + lo])
+    del lo, hi
+    both.sort()
+    rows = both // n
+    indices = (both % n).astype(np.int32)
+    del both
+    indptr = np.zeros(n + 1, dtype=np.int64)
+    np.cumsum(np.bincount(rows, minlength=n), out=indptr[1:])
+    return indptr, indices
+
+
+def write_store(path, indptr, indices, features):
+    import pyarrow as pa
+
+    from bigprune.store import Store
+
+    n = indptr.shape[0] - 1
+    with Store(path).begin("graph", params={"source": "bench/propagate.py"}) as writer:
+        writer.write_table("node_id", pa.table({"node_id": np.arange(n, dtype=np.int64)}))
+        writer.save("split", np.zeros(n, dtype=np.int8))
+        writer.save("label", np.full(n, -1, dtype=np.int64))
+        writer.save("indptr", indptr)
+        writer.save("indices", indices)
+        writer.save("features", features)
+
+
+def write_normalised(tmp, indptr, indices):
+    """Save D^-1/2 (A+I) D^-1/2 as CSR float32 for the scipy side."""
+    import scipy.sparse as sp
+
+    n = indptr.shape[0] - 1
+    adj = sp.csr_matrix((np.ones(indices.shape[0], dtype=np.float32), indices, indptr), shape=(n, n))
+    hat = (adj + sp.identity(n, dtype=np.float32, format="csr")).tocsr()
+    del adj
+    scale = (1.0 / np.sqrt(np.diff(hat.indptr).astype(np.float64))).astype(np.float32)
+    hat.data *= scale[hat.indices]
+    hat.data *= np.repeat(scale, np.diff(hat.indptr))
+    for name in ("indptr", "indices", "data"):
+        np.save(tmp / f"hat_{name}.npy", getattr(hat, name))
+
+
+def _run_bigprune(store, args):
+    threads = args.threads
+    from bigprune.propagate import propagate
+    from bigprune.store import Store
+
+    # Warm up: load (or compile once) the kernels for the same dtypes on a tiny graph.
+    tiny_indptr = np.array([0, 1, 2], dtype=np.int64)
+    tiny_indices = np.array([1, 0], dtype=np.int32)
+    with tempfile.TemporaryDirectory() as tmp:
+        write_store(Path(tmp) / "tiny", tiny_indptr, tiny_indices, np.ones((2, 4), dtype=np.float32))
+        propagate(Path(tmp) / "tiny", hops=1, threads=threads)
+    summary = propagate(store, hops=1, memory_budget="64GiB", threads=threads)
+    info = Store(store).entry("propagate")["info"]
+    return {"hop_seconds": info["hop_seconds"][0], "stage_seconds": summary["seconds"],
+            "pagerank_seconds": info["pagerank_seconds"], "pagerank_steps": info["pagerank_steps"],
+            "threads": info["threads"], "peak_rss": summary["peak_rss"]}
+
+
+def _run_scipy(store, args):
+    import scipy.sparse as sp
+
+    from bigprune.memory import peak_rss
+    from bigprune.store import Store
+
+    tmp = store.parent
+    parts = [np.load(tmp / f"hat_{name}.npy") for name in ("data", "indices", "indptr")]
+    n = parts[2].shape[0] - 1
+    hat = sp.csr_matrix(tuple(parts), shape=(n, n))
+    x = np.load(Store(store).stage_dir("graph") / "features.npy")
+    tic = time.perf_counter()
+    y = hat @ x
+    seconds = time.perf_counter() - tic
+    peak = peak_rss()
+    ours = Store(store).load("propagate", "hop_1")
+    diff = biggest = 0.0
+    for start in range(0, n, 1 << 16):  # bounded windows of the mapped result
+        part = np.asarray(ours[start:start + (1 << 16)])
+        diff = max(diff, float(np.abs(part - y[start:start + (1 << 16)]).max()))
+        biggest = max(biggest, float(np.abs(part).max()))
+    # Both sides sum in float32 in different orders: allow a few ulps of the largest value.
+    return {"hop_seconds": seconds, "peak_rss": peak, "max_abs_diff": diff, "max_abs": biggest,
+            "agree": diff <= 1e-5 * max(1.0, biggest)}
+
+
+SIDES = {"build": _build, "bigprune": _run_bigprune, "scipy": _run_scipy}
+
+if __name__ == "__main__":
+    main()

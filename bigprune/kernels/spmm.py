@@ -1,0 +1,126 @@
+"""Kernels for one smoothing hop: a normalised sparse adjacency (with self loops) times dense rows."""
+from llvmlite import ir
+from numba import njit, prange, types
+from numba.core import cgutils
+from numba.extending import intrinsic
+
+# How many entries ahead the hop kernel asks for the neighbour row it will gather. The gathers are
+# random reads of whole rows of X, so the kernel waits on memory; prefetching a row 16 entries
+# ahead cut its single-thread CPU time by about 30% on a 500k-node, 10M-entry graph (d = 64).
+AHEAD = 16
+_I8P = ir.IntType(8).as_pointer()
+_PREFETCH = "llvm.prefetch.p0" if str(_I8P) == "ptr" else "llvm.prefetch.p0i8"
+
+
+@intrinsic
+def prefetch(typingctx, array, row, col):
+    """Hint the CPU to fetch ``array[row, col]`` into cache for reading; no effect on results."""
+
+    def codegen(context, builder, signature, args):
+        array_type = signature.args[0]
+        view = context.make_array(array_type)(context, builder, args[0])
+        at = [context.cast(builder, value, kind, types.intp)
+              for value, kind in zip(args[1:], signature.args[1:])]
+        pointer = cgutils.get_item_pointer(context, builder, array_type, view, at, wraparound=False)
+        hint = ir.FunctionType(ir.VoidType(), [_I8P] + [ir.IntType(32)] * 3)
+        function = cgutils.get_or_insert_function(builder.module, hint, _PREFETCH)
+        # read access, highest temporal locality, data cache
+        flags = [ir.Constant(ir.IntType(32), v) for v in (0, 3, 1)]
+        builder.call(function, [builder.bitcast(pointer, _I8P)] + flags)
+        return context.get_dummy_value()
+
+    return types.void(array, row, col), codegen
+
+
+@njit(parallel=True, cache=True)
+def weighted_degree(indptr, weights, degree):
+    """Each row's weighted degree plus one for the self loop.
+
+    indptr : int64 (n + 1,), read. weights : float32 (nnz,) or (0,) for all-ones, read.
+    degree : float64 (n,), filled.
+    """
+    weighted = weights.shape[0] > 0
+    for r in prange(indptr.shape[0] - 1):
+        start, stop = indptr[r], indptr[r + 1]
+        if weighted:
+            total = 1.0
+            for e in range(start, stop):
+                total += weights[e]
+            degree[r] = total
+        else:
+            degree[r] = 1.0 + (stop - start)
+
+
+@njit(cache=True)
+def balanced_bounds(indptr, start, stop, parts, bounds):
+    """Cut rows ``start..stop`` into ``parts`` runs of about equal work (entries plus one per row).
+
+    indptr : int64 (n + 1,), read. bounds : int64 (parts + 1,), filled with ascending row numbers,
+    ``bounds[0] == start`` and ``bounds[parts] == stop``; runs may be empty.
+    """
+    base = indptr[start] + start
+    work = indptr[stop] + stop - base
+    bounds[0] = start
+    row = start
+    for p in range(1, parts):
+        goal = base + (work * p) // parts
+        while row < stop and indptr[row] + row < goal:
+            row += 1
+        bounds[p] = row
+    bounds[parts] = stop
+
+
+@njit(parallel=True, cache=True)
+def scale_rows(x, scale):
+    """Multiply each row of ``x`` by its scale, in place.
+
+    x : float32 (n, d), updated. scale : float32 (n,), read.
+    """
+    for i in prange(x.shape[0]):
+        c = scale[i]
+        for k in range(x.shape[1]):
+            x[i, k] *= c
+
+
+@njit(parallel=True, fastmath=True, cache=True)
+def smooth_rows(indptr, indices, weights, left, x, bounds, out):
+    """One hop for the rows ``bounds[0]..bounds[-1]``, one parallel task per run of ``bounds``.
+
+    out[i - bounds[0]] = left[i] * (x[i] + sum_e weights[e] * x[j_e]) over the entries e of row i
+    with column j_e. With ``x`` = diag(right) X_k (see ``scale_rows``) this is one hop of
+    Â = diag(left) (A+I) diag(right): ``left = right = degree**-0.5`` gives the symmetric
+    normalisation, ``left = 1 / degree`` with X_k unscaled the random-walk one.
+
+    indptr : int64 (n + 1,), read. indices : int32/int64 (nnz,), read.
+    weights : float32 (nnz,) or (0,) for all-ones, read. left : float32 (n,), read.
+    x : float32 (n, d) C-contiguous, read. bounds : int64 (tasks + 1,) ascending, read.
+    out : float32 (bounds[-1] - bounds[0], d), filled; each task writes only its own rows.
+    """
+    weighted = weights.shape[0] > 0
+    d = x.shape[1]
+    nnz = indices.shape[0]
+    line = max(1, 64 // x.itemsize)  # elements per 64-byte cache line
+    base = bounds[0]
+    for t in prange(bounds.shape[0] - 1):
+        for i in range(bounds[t], bounds[t + 1]):
+            o = out[i - base]
+            xi = x[i]
+            for k in range(d):
+                o[k] = xi[k]
+            for e in range(indptr[i], indptr[i + 1]):
+                if e + AHEAD < nnz:
+                    ahead = indices[e + AHEAD]
+                    for k in range(0, d, line):
+                        prefetch(x, ahead, k)
+                    prefetch(x, ahead, d - 1)  # the row's last line when rows are not aligned
+                xj = x[indices[e]]
+                if weighted:
+                    c = weights[e]
+                    for k in range(d):
+                        o[k] += c * xj[k]
+                else:
+                    for k in range(d):
+                        o[k] += xj[k]
+            c = left[i]
+            for k in range(d):
+                o[k] *= c
