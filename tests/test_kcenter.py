@@ -1,0 +1,164 @@
+"""The pruned greedy (bigprune/kcenter.py, bigprune/kernels/kcenter.py) against brute force,
+published approximation bounds and a plain numpy greedy."""
+from itertools import combinations
+
+import numpy as np
+import pytest
+from scipy.spatial.distance import cdist
+
+from bigprune import kcenter as kc
+from bigprune.kcenter import cover, greedy
+from bigprune.runtime import set_threads
+
+
+@pytest.fixture(autouse=True)
+def one_thread():
+    """Thread start-up would dominate these tiny cases on a small shared machine."""
+    set_threads(1)
+    yield
+    set_threads(None)
+
+
+def plain_greedy(targets, candidates, k, initial=()):
+    """Unpruned k-supplier greedy with the same set-aside rule, all in numpy (float64)."""
+    t64, c64 = targets.astype(np.float64), candidates.astype(np.float64)
+    dist = np.full(len(t64), np.inf)
+    active = np.ones(len(t64), dtype=bool)
+    chosen = list(initial)
+    for c in chosen:
+        dist = np.minimum(dist, np.sqrt(((t64 - c64[c]) ** 2).sum(1)))
+    while len(chosen) < k:
+        key = np.where(active, dist, -1.0)
+        t = int(np.argmax(key))
+        if key[t] <= 0:
+            break
+        c = int(np.argmin(((c64 - t64[t]) ** 2).sum(1)))
+        active[t] = False
+        if c in chosen:
+            continue
+        chosen.append(c)
+        dist = np.minimum(dist, np.sqrt(((t64 - c64[c]) ** 2).sum(1)))
+    return np.array(chosen), dist
+
+
+def plain_farthest_first(points, k, initial):
+    """Gonzalez's farthest-first traversal in numpy (float64), lowest index on ties."""
+    p64 = points.astype(np.float64)
+    chosen = list(initial)
+    dist = np.full(len(p64), np.inf)
+    for c in chosen:
+        dist = np.minimum(dist, np.sqrt(((p64 - p64[c]) ** 2).sum(1)))
+    while len(chosen) < k:
+        c = int(np.argmax(np.where(np.isin(np.arange(len(p64)), chosen), -1.0, dist)))
+        chosen.append(c)
+        dist = np.minimum(dist, np.sqrt(((p64 - p64[c]) ** 2).sum(1)))
+    return np.array(chosen), dist
+
+
+def blobs(rng, count, d, centres, spread=0.5):
+    """Points around a few centres, so that clustering and pruning have something to do."""
+    return (centres[rng.integers(0, len(centres), count)]
+            + rng.normal(scale=spread, size=(count, d))).astype(np.float32)
+
+
+@pytest.mark.parametrize("k", [2, 3])
+def test_kcenter_radius_within_three_times_optimum(k):
+    # Hochbaum & Shmoys (1986): the k-supplier greedy's radius is at most 3x the optimum.
+    # Optimum by brute force over all k-subsets of candidates (scipy cdist distances).
+    rng = np.random.default_rng(k)
+    worst = 0.0
+    for _ in range(25):
+        candidates = rng.normal(size=(12, 2)).astype(np.float32)
+        targets = rng.normal(size=(15, 2)).astype(np.float32) * 1.5
+        d = cdist(targets, candidates)
+        optimum = min(d[:, list(s)].min(1).max() for s in combinations(range(12), k))
+        radius = greedy(targets, candidates, k, exact=True).dist.max()
+        assert radius <= 3 * optimum + 1e-9
+        worst = max(worst, radius / optimum)
+    assert worst > 1.0  # the instances are not trivially solved: the bound is what is tested
+
+
+@pytest.mark.parametrize("k", [2, 3])
+def test_kcenter_pool_radius_within_twice_optimum(k):
+    # Gonzalez (1985): farthest-first traversal is a 2-approximation of k-center.
+    rng = np.random.default_rng(10 + k)
+    for trial in range(25):
+        points = rng.normal(size=(12, 3)).astype(np.float32)
+        d = cdist(points, points)
+        optimum = min(d[:, list(s)].min(1).max() for s in combinations(range(12), k))
+        start = [int(rng.integers(12))]
+        radius = greedy(None, points, k, initial=start, pool_targets=True).dist.max()
+        assert radius <= 2 * optimum + 1e-9
+
+
+@pytest.mark.parametrize("m,n,d,k,spread", [(15, 12, 2, 5, 0.5), (400, 300, 8, 40, 0.5),
+                                            (1500, 900, 16, 120, 0.5), (2000, 1000, 2, 150, 3.0)])
+@pytest.mark.parametrize("seeded", [False, True])
+@pytest.mark.parametrize("threads", [1, 2])
+def test_pruned_greedy_equals_plain_greedy(m, n, d, k, spread, seeded, threads):
+    # reference: plain_greedy above, an unpruned numpy implementation of the same rule
+    set_threads(threads)
+    rng = np.random.default_rng(m + n)
+    centres = rng.normal(scale=4.0, size=(6, d))
+    targets, candidates = blobs(rng, m, d, centres, spread), blobs(rng, n, d, centres, spread)
+    initial = [3, 1] if seeded else []
+    out = greedy(targets, candidates, k, initial=initial, exact=True)
+    picks, dist = plain_greedy(targets, candidates, k, initial)
+    np.testing.assert_array_equal(out.order, picks)
+    np.testing.assert_allclose(out.dist, dist, rtol=1e-12, atol=1e-12)
+    assert out.dist.max() == pytest.approx(dist.max(), rel=1e-12)
+    if m > 100:
+        assert out.stats["skipped"] > 0.2  # the pruning did skip work, yet changed nothing
+
+
+def test_distances_and_assignment_match_cdist():
+    # reference: scipy.spatial.distance.cdist, min and argmin over the chosen candidates
+    rng = np.random.default_rng(3)
+    centres = rng.normal(scale=4.0, size=(5, 6))
+    targets, candidates = blobs(rng, 700, 6, centres), blobs(rng, 400, 6, centres)
+    out = greedy(targets, candidates, 30, exact=True)
+    d = cdist(targets.astype(np.float64), candidates[out.order].astype(np.float64))
+    np.testing.assert_allclose(out.dist, d.min(1), rtol=1e-12)
+    np.testing.assert_array_equal(out.assign, d.argmin(1))
+    np.testing.assert_allclose(out.trace[-1], d.min(1).max(), rtol=1e-12)
+    dist, assign = cover(targets, candidates[out.order])
+    np.testing.assert_allclose(dist, d.min(1), rtol=1e-12)
+    np.testing.assert_array_equal(assign, d.argmin(1))
+
+
+def test_pool_mode_equals_plain_farthest_first():
+    # reference: plain_farthest_first above (Gonzalez's traversal in numpy)
+    rng = np.random.default_rng(4)
+    points = blobs(rng, 800, 5, rng.normal(scale=4.0, size=(7, 5)))
+    out = greedy(None, points, 60, initial=[17], pool_targets=True)
+    picks, dist = plain_farthest_first(points, 60, [17])
+    np.testing.assert_array_equal(out.order, picks)
+    np.testing.assert_allclose(out.dist, dist, rtol=1e-12)
+
+
+def test_fill_continues_farthest_first_once_targets_are_served():
+    # Three targets are served by at most three picks; the rest must follow Gonzalez's
+    # traversal over the candidates from the chosen set (reference: plain_farthest_first).
+    rng = np.random.default_rng(5)
+    candidates = rng.normal(size=(20, 3)).astype(np.float32)
+    targets = rng.normal(size=(3, 3)).astype(np.float32)
+    out = greedy(targets, candidates, 8, exact=True)
+    served, _ = plain_greedy(targets, candidates, 8)
+    assert len(served) <= 3 and out.stats["filled"] == 8 - len(served)
+    picks, _ = plain_farthest_first(candidates, 8, list(served))
+    np.testing.assert_array_equal(out.order, picks)
+    np.testing.assert_allclose(out.dist, cdist(targets, candidates[picks]).min(1), rtol=1e-6)
+
+
+def test_certified_ivf_search_gives_the_exact_greedy(monkeypatch):
+    # reference: plain_greedy (exact nearest candidate by numpy argmin) and cdist distances
+    monkeypatch.setattr(kc, "FLAT_MAX", 500)
+    rng = np.random.default_rng(6)
+    centres = rng.normal(scale=4.0, size=(8, 8))
+    targets, candidates = blobs(rng, 600, 8, centres), blobs(rng, 3000, 8, centres)
+    out = greedy(targets, candidates, 50, seed=1)
+    assert out.stats["index"] == "ivf" and out.stats["recall"] == 1.0
+    picks, dist = plain_greedy(targets, candidates, 50)
+    np.testing.assert_array_equal(out.order, picks)
+    d = cdist(targets.astype(np.float64), candidates[out.order].astype(np.float64))
+    np.testing.assert_allclose(out.dist, d.min(1), rtol=1e-12)
