@@ -104,6 +104,7 @@ def run_job(path, dry_run=False, echo=print):
                     result = propagate(store, **job["propagate"], **opts)
                 else:
                     entry = step["entry"]
+                    Path(entry["out"]).parent.mkdir(parents=True, exist_ok=True)
                     result = select(store, entry["strategy"], entry["budget"], targets=entry["targets"],
                                     seed=entry["seed"], out=entry["out"], **opts)
                     upstream = store.entry("propagate")["dir"]

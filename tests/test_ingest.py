@@ -148,3 +148,18 @@ def test_budget_too_small_exits_3(tmp_path, capsys):
     assert code == 3
     assert "--memory-budget 100.0 MiB is too small for ingest" in capsys.readouterr().err
     assert not (tmp_path / "store").exists()
+
+
+def test_karate_club_homophily_after_ingest(tmp_path):
+    g, _ = karate_files(tmp_path)
+    table = pq.read_table(tmp_path / "nodes.parquet")
+    club = [int(g.nodes[i]["club"] == "Officer") for i in range(34)]
+    table = table.set_column(1, "split", pa.array(["train"] * 34)).set_column(2, "label", pa.array(club, pa.int64()))
+    pq.write_table(table, tmp_path / "nodes.parquet")
+    ingest(tmp_path / "edges", tmp_path / "nodes.parquet", tmp_path / "store")
+    from bigprune.report import homophily
+
+    ours = homophily(Store(tmp_path / "store"), np.arange(34, dtype=np.int64), window_rows=7)
+    # reference: the same share counted with networkx on its copy of the club (Zachary, 1977)
+    shares = [np.mean([g.nodes[v]["club"] == g.nodes[u]["club"] for v in g.neighbors(u)]) for u in g]
+    assert ours == pytest.approx(np.mean(shares))
