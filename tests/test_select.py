@@ -1,4 +1,5 @@
 """bigprune/select.py and bigprune/strategies.py: validation, strategies, outputs."""
+import importlib
 import json
 import os
 
@@ -8,7 +9,6 @@ import pyarrow.parquet as pq
 import pytest
 import scipy.sparse as sp
 
-from bigprune import select as select_module
 from bigprune.errors import InputError
 from bigprune.kcenter import greedy
 from bigprune.runtime import set_threads
@@ -16,6 +16,8 @@ from bigprune.schema import NO_LABEL
 from bigprune.select import parse_budget, select
 from bigprune.strategies import STRATEGIES
 from conftest import write_graph_store
+
+select_module = importlib.import_module("bigprune.select")  # the package's `select` is the function
 
 
 @pytest.fixture(autouse=True)
