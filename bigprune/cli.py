@@ -1,9 +1,11 @@
 """The ``bigprune`` command: parses options, calls one library function, prints a summary.
 
 Errors from the library arrive typed (``bigprune.errors``) and leave as one line on stderr with
-exit status 2 (bad input or usage) or 3 (the memory budget cannot work).
+exit status 2 (bad input or usage) or 3 (resources: the memory budget cannot work, or the disk
+is full).
 """
 import argparse
+import errno
 import json
 import sys
 
@@ -26,11 +28,14 @@ EXAMPLES = {
   bigprune run job.toml
   bigprune run job.toml --dry-run      # which stages would run, and why
 
-exit status: 0 done, 2 bad input or job file, 3 memory budget too small, 4 store in use""",
+exit status: 0 done, 2 bad input or job file, 3 memory budget too small or disk full, 4 store in use""",
     "status": """examples:
   bigprune status --store store/""",
     "check": """examples:
   bigprune check job.toml""",
+    "train": """examples:
+  bigprune train --store store/                                 # the whole pool
+  bigprune train --store store/ --nodes-from picks.parquet --answers answers.parquet""",
     "select": """examples:
   bigprune select --store store/ --strategy kcenter --budget 0.05 --out picks.parquet
   bigprune select --store store/ --strategy random --budget 5000 --seed 1 --out random.parquet""",
@@ -79,6 +84,11 @@ def _parser():
     p.add_argument("--hops", type=int, default=2, metavar="K", help="propagation hops (default 2)")
     p.add_argument("--norm", default="sym", choices=["sym", "rw"],
                    help="sym: D^-1/2 (A+I) D^-1/2 (default); rw: D^-1 (A+I)")
+    p.add_argument("--dtype", default="float32", choices=["float32", "float16"],
+                   help="how hops are stored; sums are float32 either way (default float32)")
+    p.add_argument("--restrict", action=argparse.BooleanOptionalAction, default=False,
+                   help="compute only the rows that the training pool and the valid and test "
+                        "splits need; the others are NaN (default: every row)")
 
     p = sub.add_parser("select", parents=[common], formatter_class=fmt, epilog=EXAMPLES["select"],
                        help="pick a training subset and report what it covers")
@@ -92,6 +102,16 @@ def _parser():
     p.add_argument("--seed", type=int, default=0, metavar="S")
     p.add_argument("--out", required=True, metavar="FILE.parquet",
                    help="selection table; the report goes beside it as FILE.json")
+    p = sub.add_parser("train", parents=[common], formatter_class=fmt, epilog=EXAMPLES["train"],
+                       help="fit the proxy model on a selection or the pool and score it")
+    p.add_argument("--store", required=True, metavar="DIR")
+    p.add_argument("--nodes-from", default=None, metavar="FILE.parquet",
+                   help="train on these nodes (a selection's node_id column); default: the whole pool")
+    p.add_argument("--answers", default=None, metavar="FILE.parquet",
+                   help="node_id, label of target nodes to score on as well as the valid split")
+    p.add_argument("--l2", type=float, default=1.0, help="L2 penalty (scikit-learn's 1/C; default 1)")
+    p.add_argument("--hop", type=int, default=None, metavar="K", help="features after K hops (default: last)")
+
     p = sub.add_parser("run", parents=[common], formatter_class=fmt, epilog=EXAMPLES["run"],
                        help="run a job file: ingest, propagate, select, skipping what is current")
     p.add_argument("job", metavar="JOB.toml")
@@ -131,7 +151,12 @@ def _run(args):
     if args.command == "propagate":
         from .propagate import propagate
 
-        return propagate(args.store, hops=args.hops, norm=args.norm, **opts)
+        return propagate(args.store, hops=args.hops, norm=args.norm, dtype=args.dtype,
+                         restrict=args.restrict, **opts)
+    if args.command == "train":
+        from .train import train
+
+        return train(args.store, nodes_from=args.nodes_from, answers=args.answers, l2=args.l2, hop=args.hop, **opts)
     from .select import select
 
     report = select(args.store, args.strategy, args.budget, targets=args.targets, seed=args.seed,
@@ -156,6 +181,13 @@ def main(argv=None):
     except MemoryError:
         print(f"bigprune {args.command}: error: out of memory; lower the data size or raise "
               "--memory-budget", file=sys.stderr)
+        return 3
+    except OSError as exc:
+        if exc.errno != errno.ENOSPC:
+            raise
+        where = f" writing {exc.filename}" if exc.filename else ""
+        print(f"bigprune {args.command}: error: no space left on device{where}; free space or move "
+              "the store, then rerun (the store keeps its last committed state)", file=sys.stderr)
         return 3
     except KeyboardInterrupt:
         print(f"bigprune {args.command}: interrupted; the store keeps its last committed state",
