@@ -3,10 +3,11 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute  # noqa: F401  (pa.compute)
 
-from .errors import InputError
+from .errors import BudgetError, InputError
 from .kernels.csr import compact_rows, count_endpoints, scatter_edges, sort_unique_rows
+from .memory import format_size
 from .runtime import progress
-from .sources import id_kind, is_numeric, open_parquet
+from .sources import first_damaged, id_kind, is_numeric, open_parquet
 
 # Per input edge row while building: u, v (int64 as DuckDB returns them, then int32/int64 kept),
 # optional weight, and two CSR slots (index + weight) for the symmetric copy.
@@ -81,9 +82,9 @@ def build_csr(con, edges, node_count, index_dtype, writer, batch_rows, drop_unkn
             u_all[filled:stop], v_all[filled:stop] = u, v
             if edges.weighted:
                 w = batch.column(2).to_numpy(zero_copy_only=False)
-                if not np.all(w > 0):  # also false for NaN and null
+                if not np.all((w > 0) & (w < np.inf)):  # also false for NaN and null
                     reader.close()
-                    _explain_weight(con, edges)
+                    _explain_weight(edges)
                 w_all[filled:stop] = w
             loops += count_endpoints(u, v, counts)
             filled = stop
@@ -97,7 +98,8 @@ def build_csr(con, edges, node_count, index_dtype, writer, batch_rows, drop_unkn
     nnz = int(indptr[-1])
     indices = np.empty(nnz, dtype=index_dtype)
     weights = np.empty(nnz if edges.weighted else 0, dtype=np.float32)
-    scatter_edges(u_all, v_all, w_all, indptr[:-1].copy(), indices, weights)
+    # Rows dropped as unknown leave the tail of u_all/v_all unfilled: scatter only what was read.
+    scatter_edges(u_all[:filled], v_all[:filled], w_all[:filled], indptr[:-1].copy(), indices, weights)
     del u_all, v_all, w_all
     kept = np.empty(node_count, dtype=np.int64)
     sort_unique_rows(indptr, indices, weights, kept)
@@ -127,13 +129,43 @@ def _explain_unmapped(con, edges):
                      "which is not in --nodes")
 
 
-def _explain_weight(con, edges):
-    row = con.execute(
-        f"SELECT filename, file_row_number, weight FROM {edges.sql_source()} "
-        f"WHERE weight IS NULL OR isnan(weight::DOUBLE) OR weight <= 0 "
-        f"ORDER BY filename, file_row_number LIMIT 1").fetchone()
-    file, index, value = row
-    raise InputError(f"--edges {file}: column 'weight' row {index} holds {value}; weights must be > 0")
+def _explain_weight(edges):
+    """Find the first weight that is not a finite positive float32 and say where it is.
+
+    Scanned with pyarrow, not DuckDB: DuckDB prunes row groups by their min/max statistics,
+    which leave NaN out, so a filter for NaN finds nothing.
+    """
+    import pyarrow.parquet as pq
+
+    for path in edges.files:
+        row = 0
+        for batch in pq.ParquetFile(path).iter_batches(columns=["weight"]):
+            with np.errstate(over="ignore"):  # a float64 weight too large for float32 becomes inf
+                w = batch.column(0).to_numpy(zero_copy_only=False).astype(np.float32)
+            bad = np.flatnonzero(~((w > 0) & (w < np.inf)))
+            if bad.size:
+                value = batch.column(0)[int(bad[0])].as_py()
+                raise InputError(f"--edges {path}: column 'weight' row {row + bad[0]} holds {value}; "
+                                 "weights must be finite and > 0")
+            row += len(batch)
+    raise InputError("--edges: a weight is NaN, infinite or <= 0 but could not be located again")
+
+
+def scan_error(exc, edges, budget):
+    """The error to raise for a DuckDB failure while scanning the partitions.
+
+    Out of memory is the budget's fault (exit 3); a damaged file is named (exit 2); a failed
+    system call (``errno`` set: disk full, ...) and anything else come back unchanged.
+    """
+    import duckdb
+
+    if isinstance(exc, OSError) and exc.errno is not None:
+        return exc
+    if isinstance(exc, duckdb.OutOfMemoryException) or "Out of Memory Error" in str(exc):
+        return BudgetError(f"--memory-budget {format_size(budget)}: DuckDB ran out of memory joining "
+                           f"{edges.rows:,} edge rows; raise the budget")
+    columns = ["src", "dst"] + (["weight"] if edges.weighted else [])
+    return first_damaged(edges.files, columns, "--edges") or exc
 
 
 def register_ids(con, ids, index_dtype):

@@ -1,17 +1,15 @@
 """Ingest: the night's edge partitions and the node table become the store's graph stage."""
 import time
-from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
 
-from .edges import BYTES_PER_EDGE_ROW, EdgeFiles, build_csr, register_ids
-from .errors import InputError
+from .edges import BYTES_PER_EDGE_ROW, EdgeFiles, build_csr, register_ids, scan_error
 from .fingerprint import fingerprints
 from .memory import DEFAULT_BUDGET, MIB, format_size, parse_size, peak_rss, require, working_memory
 from .nodetable import NodeTable, copy_npy_features
 from .runtime import set_threads
-from .sources import edge_files
+from .sources import edge_files, regular_file
 from .store import Store
 
 
@@ -49,12 +47,15 @@ def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, thr
     times (in either direction) becomes one edge keeping its largest weight, so repeating an
     edge never changes the graph.
     """
+    import duckdb
+
     started = time.time()
     budget = parse_size(memory_budget)
     threads = set_threads(threads)
     store = store if isinstance(store, Store) else Store(store)
-    if not Path(nodes).is_file():
-        raise InputError(f"--nodes {nodes}: no such file")
+    regular_file(nodes, "--nodes")
+    if features is not None:
+        regular_file(features, "--features")
     table = NodeTable(nodes, needs_features=features is None)
     partitions = EdgeFiles(edge_files(edges), table.id_kind)
     n = table.rows
@@ -85,8 +86,11 @@ def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, thr
         writer.save("label", table.label)
         con = _duckdb(writer.scratch(), duck_bytes, threads)
         register_ids(con, table.ids, index_dtype)
-        counts = build_csr(con, partitions, n, index_dtype, writer, batch_rows=1 << 20,
-                           drop_unknown=drop_unknown)
+        try:
+            counts = build_csr(con, partitions, n, index_dtype, writer, batch_rows=1 << 20,
+                               drop_unknown=drop_unknown)
+        except (duckdb.Error, OSError) as exc:  # DuckDB errors met mid-stream arrive as Arrow's OSError
+            raise scan_error(exc, partitions, budget) from None
         con.close()
         summary = {"nodes": n, "feature_dim": dim, "weighted": bool(partitions.weighted),
                    "edge_files": len(partitions.files), **counts,

@@ -6,7 +6,7 @@ import pyarrow.compute as pc
 from .errors import InputError
 from .memory import chunk_ranges, rows_per_chunk
 from .schema import NO_LABEL, NO_SPLIT, SPLIT_CODES
-from .sources import id_kind, is_numeric, open_parquet
+from .sources import id_kind, is_numeric, open_parquet, read_error
 
 
 class NodeTable:
@@ -37,7 +37,10 @@ class NodeTable:
         self.rows = self.file.metadata.num_rows
         if self.rows == 0:
             raise InputError(f"--nodes {path}: the node table has no rows")
-        table = self.file.read(columns=["node_id", "split", "label"])
+        try:
+            table = self.file.read(columns=["node_id", "split", "label"])
+        except (OSError, pa.ArrowException) as exc:
+            raise read_error(path, "--nodes", exc) from None
         self.ids = table.column("node_id").combine_chunks()
         if pa.types.is_dictionary(self.ids.type):
             self.ids = self.ids.dictionary_decode()
@@ -98,7 +101,7 @@ class NodeTable:
         dim = out.shape[1]
         row = 0
         batch_rows = rows_per_chunk(chunk_bytes, 8 * dim, at_least=1024)
-        for batch in self.file.iter_batches(batch_size=batch_rows, columns=["features"]):
+        for batch in self._batches(batch_rows):
             column = batch.column(0)
             if column.null_count:
                 bad = int(np.flatnonzero(column.is_null().to_numpy(zero_copy_only=False))[0])
@@ -114,9 +117,21 @@ class NodeTable:
             out[row:row + len(block)] = block
             row += len(block)
 
+    def _batches(self, rows):
+        """The ``features`` column in record batches of ``rows`` rows; a damaged page is named."""
+        batches = self.file.iter_batches(batch_size=rows, columns=["features"])
+        while True:
+            try:
+                batch = next(batches, None)
+            except (OSError, pa.ArrowException) as exc:
+                raise read_error(self.path, "--nodes", exc) from None
+            if batch is None:
+                return
+            yield batch
+
     def feature_dim(self):
         """The length of row 0's feature list."""
-        first = next(self.file.iter_batches(batch_size=1, columns=["features"])).column(0)
+        first = next(self._batches(1)).column(0)
         if first.null_count:
             raise InputError(f"--nodes {self.path}: column 'features' is null at row 0")
         dim = len(first[0].values)
@@ -127,6 +142,9 @@ class NodeTable:
 
 def copy_npy_features(path, rows, out_factory, chunk_bytes):
     """Check ``--features FILE.npy`` against the node table and copy it as float32 in chunks."""
+    with open(path, "rb") as fh:
+        if fh.read(6) != b"\x93NUMPY":  # else np.load tries pickle and talks about that
+            raise InputError(f"--features {path}: not a .npy file (no NumPy header); write it with numpy.save")
     try:
         source = np.load(path, mmap_mode="r")
     except (OSError, ValueError) as exc:

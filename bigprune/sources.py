@@ -17,7 +17,7 @@ def edge_files(spec):
         if not files:
             raise InputError(f"--edges {spec}: directory holds no files")
     elif path.exists():
-        files = [path]
+        files = [regular_file(path, "--edges")]
     elif glob.has_magic(str(spec)):
         files = sorted(Path(p) for p in glob.glob(str(spec), recursive=True) if os.path.isfile(p))
         if not files:
@@ -27,6 +27,17 @@ def edge_files(spec):
     return files
 
 
+def regular_file(path, option):
+    """``path`` if it is a regular file; a FIFO or device would block or never end when read."""
+    path = Path(path)
+    if not path.exists():
+        raise InputError(f"{option} {path}: no such file")
+    if not path.is_file():
+        raise InputError(f"{option} {path}: not a regular file (a directory, FIFO or device); "
+                         "give a file")
+    return path
+
+
 def open_parquet(path, option):
     """A ``pyarrow.parquet.ParquetFile``, or an error naming the file and why it is unusable."""
     try:
@@ -34,8 +45,31 @@ def open_parquet(path, option):
     except PermissionError:
         raise InputError(f"{option} {path}: permission denied") from None
     except (OSError, pa.ArrowException) as exc:
-        reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-        raise InputError(f"{option} {path}: not a readable Parquet file ({reason})") from None
+        raise InputError(f"{option} {path}: not a readable Parquet file ({_reason(exc)})") from None
+
+
+def read_error(path, option, exc):
+    """The error for a Parquet file whose footer opens but whose pages do not decode."""
+    return InputError(f"{option} {path}: cannot be read, the file is damaged ({_reason(exc)})")
+
+
+def first_damaged(files, columns, option):
+    """The error for the first file in ``files`` with a row group that fails to decode, or None.
+
+    Used only after a scan failed, to name the file; reads one row group at a time.
+    """
+    for path in files:
+        file = open_parquet(path, option)
+        for group in range(file.num_row_groups):
+            try:
+                file.read_row_group(group, columns=columns)
+            except (OSError, pa.ArrowException) as exc:
+                return read_error(path, option, exc)
+    return None
+
+
+def _reason(exc):
+    return str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
 
 
 def id_kind(arrow_type):

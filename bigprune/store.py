@@ -83,6 +83,8 @@ class Store:
         if key in _HELD:
             yield self
             return
+        if self.path.exists() and not self.path.is_dir():
+            raise InputError(f"--store {self.path}: exists and is not a directory")
         created = not self.path.exists()
         self.path.mkdir(parents=True, exist_ok=True)
         lock = self.path / LOCK
@@ -135,11 +137,21 @@ class StageWriter:
 
     def array(self, name, shape, dtype):
         """A writeable ``.npy`` memory map to fill in place."""
-        return np.lib.format.open_memmap(self.path / f"{name}.npy", mode="w+", dtype=dtype,
-                                         shape=tuple(int(s) for s in shape))
+        path = self.path / f"{name}.npy"
+        out = np.lib.format.open_memmap(path, mode="w+", dtype=dtype, shape=tuple(int(s) for s in shape))
+        # On a full disk, writing a page of a sparse mapped file kills the process with SIGBUS.
+        with open(path, "r+b") as fh:
+            _reserve(fh, os.fstat(fh.fileno()).st_size, path)
+        return out
 
     def save(self, name, values):
-        np.save(self.path / f"{name}.npy", np.ascontiguousarray(values))
+        values = np.ascontiguousarray(values)
+        path = self.path / f"{name}.npy"
+        with open(path, "wb") as fh:
+            # On a full disk np.save reports a short write without an errno. (Header <= 4 KiB.)
+            _reserve(fh, values.nbytes + 4096, path)
+            np.save(fh, values)
+            fh.truncate()
 
     def write_table(self, name, table):
         import pyarrow.parquet as pq
@@ -185,7 +197,11 @@ class StageWriter:
             "peak_rss": peak_rss(),
         }
         manifest["format_version"] = FORMAT_VERSION
-        _write_json_atomic(root / MANIFEST, manifest)
+        try:
+            _write_json_atomic(root / MANIFEST, manifest)
+        except OSError:  # not committed after all (disk full): leave no orphan directory
+            shutil.rmtree(root / final, ignore_errors=True)
+            raise
         for old in stale:
             shutil.rmtree(root / old, ignore_errors=True)
         _remove_if_empty(root / STAGING)
@@ -206,10 +222,22 @@ def _take_lock(lock):
                 continue
             raise LockedError(f"--store {lock.parent}: in use by process {pid} on {host.strip()} "
                              f"(lock file {lock}); wait for it to finish") from None
-        with os.fdopen(fd, "w") as fh:
-            fh.write(me)
+        try:
+            with os.fdopen(fd, "w") as fh:
+                fh.write(me)
+        except OSError:  # an empty lock file would read as held by process 0 forever
+            lock.unlink(missing_ok=True)
+            raise
         return
     raise InputError(f"--store {lock.parent}: could not take the lock {lock}")
+
+
+def _reserve(fh, nbytes, path):
+    """Allocate the first ``nbytes`` of open file ``fh`` now: a full disk fails here with ENOSPC."""
+    try:
+        os.posix_fallocate(fh.fileno(), 0, nbytes)
+    except OSError as exc:
+        raise OSError(exc.errno, exc.strerror, str(path)) from None
 
 
 def _describe(path):
@@ -221,10 +249,14 @@ def _describe(path):
 
 def _write_json_atomic(path, payload):
     tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-    with open(tmp, "w") as fh:
-        json.dump(payload, fh, indent=2, sort_keys=True)
-        fh.flush()
-        os.fsync(fh.fileno())
+    try:
+        with open(tmp, "w") as fh:
+            json.dump(payload, fh, indent=2, sort_keys=True)
+            fh.flush()
+            os.fsync(fh.fileno())
+    except OSError:
+        tmp.unlink(missing_ok=True)
+        raise
     os.replace(tmp, path)
 
 
@@ -236,7 +268,11 @@ def _fsync_tree(path):
 
 
 def _sweep_staging(staging):
-    """Remove staging directories left by processes that no longer run."""
+    """Remove staging directories (and manifest temporaries) left by processes that no longer run."""
+    for tmp in staging.parent.glob(f".{MANIFEST}.*.tmp"):
+        pid = tmp.name.split(".")[-2]
+        if pid.isdigit() and not _alive(int(pid)):
+            tmp.unlink(missing_ok=True)
     if not staging.is_dir():
         return
     for leftover in staging.iterdir():

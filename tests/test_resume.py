@@ -1,0 +1,224 @@
+"""The nightly job under faults: killed runs resume to the same bytes, locks, leftovers, reruns,
+changed inputs, and a full disk.
+
+The kill trials use ``bench/resume.py``'s helpers (a subprocess SIGKILLed at a chosen step);
+the reference is the same job run once uninterrupted.
+"""
+import errno
+import hashlib
+import importlib.util
+import json
+import os
+import shutil
+import socket
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pyarrow.parquet as pq
+import pytest
+
+from bigprune.cli import main
+from bigprune.scenario import generate
+
+ROOT = Path(__file__).resolve().parents[1]
+_spec = importlib.util.spec_from_file_location("bench_resume", ROOT / "bench" / "resume.py")
+bench = importlib.util.module_from_spec(_spec)
+_spec.loader.exec_module(bench)
+
+
+@pytest.fixture(scope="module")
+def scenario(tmp_path_factory):
+    """A 2000-node scenario and the job's outputs from one uninterrupted run (in a subprocess)."""
+    root = tmp_path_factory.mktemp("resume")
+    generate(root / "data", nodes=2000, avg_degree=6, dim=8, days=2, parts_per_day=2, seed=11)
+    bench.write_job(root / "reference", root / "data", threads=1)
+    code, _, stderr, _ = bench.run(root / "reference")
+    assert code == 0, stderr
+    return root, bench.outputs(root / "reference")
+
+
+@pytest.fixture
+def done(scenario, tmp_path):
+    """The job run to completion (in this process) over its own copy of the data, which tests
+    may change; a copied store would not do, the manifest fingerprints inputs by path."""
+    root, _ = scenario
+    shutil.copytree(root / "data", tmp_path / "data")
+    bench.write_job(tmp_path / "job", tmp_path / "data", threads=1)
+    assert main(["run", str(tmp_path / "job" / "job.toml"), "--quiet"]) == 0
+    return tmp_path / "job"
+
+
+def digest(root):
+    h = hashlib.sha256()
+    for path in sorted(Path(root).rglob("*")):
+        h.update(str(path.relative_to(root)).encode())
+        if path.is_file():
+            h.update(path.read_bytes())
+    return h.hexdigest()
+
+
+def plan(job, capsys):
+    capsys.readouterr()
+    assert main(["run", str(job / "job.toml"), "--dry-run", "--quiet"]) == 0
+    return [line.split()[0] for line in capsys.readouterr().out.splitlines()]
+
+
+@pytest.mark.parametrize("at, delay", [(None, 0.4), ("ingest", 0.3), ("propagate", 0.0),
+                                       ("select random", 0.0)])
+def test_killed_run_resumes_to_the_same_bytes(scenario, tmp_path, at, delay):
+    root, reference = scenario
+    bench.write_job(tmp_path, root / "data", threads=1)
+    trial = bench.kill_and_resume(tmp_path, delay, at=at)
+    assert trial["resume_code"] == 0, trial["resume_stderr"]
+    # reference: the same job run once without interruption
+    assert trial["outputs"] == reference
+    assert trial["leftovers"] == [] and trial["all_skip_after"]
+
+
+def test_stale_lock_is_taken_over(done, capsys):
+    dead = subprocess.Popen([sys.executable, "-c", "pass"])
+    dead.wait()  # its pid now names no process
+    (done / "store" / ".lock").write_text(f"{dead.pid} {socket.gethostname()}")
+    (done / "selections" / "random.parquet").unlink()
+    assert main(["run", str(done / "job.toml"), "--quiet"]) == 0
+    assert not (done / "store" / ".lock").exists() and (done / "selections" / "random.parquet").exists()
+
+
+def test_live_lock_refuses_with_exit_4(done, capsys):
+    holder = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)"])
+    try:
+        lock = done / "store" / ".lock"
+        lock.write_text(f"{holder.pid} {socket.gethostname()}")
+        before = digest(done)
+        capsys.readouterr()
+        for args in (["run", str(done / "job.toml")],
+                     ["ingest", "--edges", str(done.parent / "data" / "edges"), "--nodes",
+                      str(done.parent / "data" / "nodes.parquet"), "--store", str(done / "store")]):
+            assert main([*args, "--quiet"]) == 4
+            err = capsys.readouterr().err
+            assert err.count("\n") == 1 and "Traceback" not in err
+            assert f"in use by process {holder.pid} on {socket.gethostname()} (lock file {lock})" in err
+        assert digest(done) == before
+    finally:
+        holder.kill()
+        holder.wait()
+
+
+def test_staging_of_dead_processes_is_swept(done, capsys):
+    holder = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)"])
+    dead = subprocess.Popen([sys.executable, "-c", "pass"])
+    dead.wait()
+    try:
+        staging = done / "store" / ".staging"
+        for name in (f"graph-{dead.pid}-0badc0de", f"propagate-{dead.pid}-deadbeef", f"graph-{holder.pid}-a11ce000"):
+            (staging / name).mkdir(parents=True)
+            np.save(staging / name / "features.npy", np.zeros(3))
+        # a manifest temporary of a process killed while committing
+        (done / "store" / f".manifest.json.{dead.pid}.tmp").write_text("{")
+        # rewrite one partition so that ingest runs and opens a stage
+        first = sorted((done.parent / "data" / "edges").rglob("*.parquet"))[0]
+        pq.write_table(pq.read_table(first).slice(1), first)
+        assert main(["run", str(done / "job.toml"), "--quiet"]) == 0
+        assert sorted(p.name for p in staging.iterdir()) == [f"graph-{holder.pid}-a11ce000"]
+        assert not (done / "store" / f".manifest.json.{dead.pid}.tmp").exists()
+    finally:
+        holder.kill()
+        holder.wait()
+
+
+def test_unchanged_inputs_skip_every_step(done, capsys):
+    assert set(plan(done, capsys)) == {"skip"}
+    before = digest(done / "store"), {p.name: p.read_bytes() for p in (done / "selections").iterdir()}
+    first = sorted((done.parent / "data" / "edges").rglob("*.parquet"))[0]
+    os.utime(first)  # a new modification time alone: the fingerprints compare content
+    assert set(plan(done, capsys)) == {"skip"}
+    assert main(["run", str(done / "job.toml"), "--quiet"]) == 0
+    assert (digest(done / "store"), {p.name: p.read_bytes() for p in (done / "selections").iterdir()}) == before
+
+
+def test_rewritten_partition_reruns_from_ingest(done, tmp_path, capsys):
+    third = sorted((tmp_path / "data" / "edges").rglob("*.parquet"))[2]
+    table = pq.read_table(third)
+    pq.write_table(table.slice(0, len(table) - 25), third)
+    steps = plan(done, capsys)
+    assert steps == ["run"] * len(steps) and len(steps) == 2 + len(bench.STRATEGIES)
+    capsys.readouterr()
+    assert main(["run", str(done / "job.toml"), "--quiet"]) == 0
+    assert "inputs changed: 1 changed" in capsys.readouterr().out
+    bench.write_job(tmp_path / "scratch", tmp_path / "data", threads=1)
+    assert main(["run", str(tmp_path / "scratch" / "job.toml"), "--quiet"]) == 0
+    # reference: a from-scratch run on the changed inputs
+    assert bench.outputs(done) == bench.outputs(tmp_path / "scratch")
+    assert bench.leftovers(done) == []
+
+
+# ---- a full disk ----------------------------------------------------------------------------
+@pytest.fixture
+def small_disk(tmp_path):
+    """A 1 MiB tmpfs (we run as root); skipped where mounting is not allowed."""
+    disk = tmp_path / "disk"
+    disk.mkdir()
+    mounted = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=1M", "tmpfs", str(disk)], capture_output=True)
+    if mounted.returncode != 0:
+        pytest.skip(f"cannot mount a tmpfs: {mounted.stderr.decode().strip()}")
+    try:
+        yield disk
+    finally:
+        subprocess.run(["umount", str(disk)], check=True)
+
+
+def _ingest(data, store):
+    return main(["ingest", "--edges", str(data / "edges"), "--nodes", str(data / "nodes.parquet"),
+                 "--store", str(store), "--quiet", "--threads", "1"])
+
+
+def test_full_disk_exits_3_and_keeps_the_store(scenario, small_disk, capsys):
+    root, _ = scenario
+    store = small_disk / "store"
+    assert _ingest(root / "data", store) == 0
+    need = sum(p.stat().st_size for p in store.rglob("*") if p.is_file())
+    before = digest(store)
+    faults = set()
+    for share in (0.0, 0.2, 0.4, 0.6, 0.8, 0.95):  # room for that share of a second graph stage
+        stat = os.statvfs(small_disk)
+        ballast = small_disk / "ballast"
+        with open(ballast, "wb") as fh:
+            os.posix_fallocate(fh.fileno(), 0, stat.f_bavail * stat.f_frsize - int(share * need))
+        capsys.readouterr()
+        assert _ingest(root / "data", store) == 3
+        err = capsys.readouterr().err
+        assert err.count("\n") == 1 and "Traceback" not in err
+        assert "bigprune ingest: error: no space left on device" in err
+        faults.add(err.split(" writing ")[1].split(";")[0] if " writing " in err else "unnamed")
+        assert digest(store) == before  # no staging, lock or temporary file left behind
+        ballast.unlink()
+    assert len(faults) >= 3, faults  # the fault landed in different files
+    assert _ingest(root / "data", store) == 0
+
+
+def test_full_disk_simulated(scenario, tmp_path, capsys, monkeypatch):
+    """Where no tmpfs can be mounted: the second array written fails with ENOSPC."""
+    root, _ = scenario
+    store = tmp_path / "store"
+    assert _ingest(root / "data", store) == 0
+    before = digest(store)
+    calls = []
+    real = os.posix_fallocate
+
+    def fallocate(fd, offset, length):
+        calls.append(length)
+        if len(calls) == 2:
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+        return real(fd, offset, length)
+
+    monkeypatch.setattr(os, "posix_fallocate", fallocate)
+    capsys.readouterr()
+    assert _ingest(root / "data", store) == 3
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "no space left on device writing " in err
+    assert digest(store) == before
+    monkeypatch.undo()
+    assert main(["status", "--store", str(store)]) == 0
+    assert json.loads((store / "manifest.json").read_text())["stages"]["graph"]["info"]["nodes"] == 2000
