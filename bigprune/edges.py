@@ -4,14 +4,11 @@ import pyarrow as pa
 import pyarrow.compute  # noqa: F401  (pa.compute)
 
 from .errors import BudgetError, InputError
-from .kernels.csr import compact_rows, count_endpoints, scatter_edges, sort_unique_rows
+from .csrbuild import EdgeRows, build_in_blocks, build_in_memory, in_memory_bytes_per_row
+from .kernels.csr import count_endpoints
 from .memory import format_size
 from .runtime import progress
 from .sources import first_damaged, id_kind, is_numeric, open_parquet
-
-# Per input edge row while building: u, v (int64 as DuckDB returns them, then int32/int64 kept),
-# optional weight, and two CSR slots (index + weight) for the symmetric copy.
-BYTES_PER_EDGE_ROW = 8 + 8 + 4 + 2 * (8 + 4)
 
 
 class EdgeFiles:
@@ -50,21 +47,24 @@ class EdgeFiles:
         return f"read_parquet([{names}], filename = true, file_row_number = true)"
 
 
-def build_csr(con, edges, node_count, index_dtype, writer, batch_rows, drop_unknown=False):
+def build_csr(con, edges, node_count, index_dtype, writer, batch_rows, edge_bytes, drop_unknown=False):
     """Map ids to rows, symmetrise, drop loops, merge repeats; write indptr/indices(/weight).
 
     ``con`` is a DuckDB connection holding the id map as table ``idmap(id, idx)``. Edge rows
     naming a node missing from the node table are an error, or dropped and counted with
-    ``drop_unknown``. Returns a dict of counts for the manifest.
+    ``drop_unknown``. ``edge_bytes`` bounds what the build holds: when the edge rows and the
+    whole adjacency fit it they stay in memory, else they are spilled and built in row blocks.
+    Returns a dict of counts for the manifest.
     """
     weight_sql = "e.weight::FLOAT AS w" if edges.weighted else "NULL::FLOAT AS w"
     query = (f"SELECT s.idx AS u, d.idx AS v, {weight_sql} FROM {edges.sql_source()} AS e "
              "LEFT JOIN idmap AS s ON e.src = s.id LEFT JOIN idmap AS d ON e.dst = d.id")
-    u_all = np.empty(edges.rows, dtype=index_dtype)
-    v_all = np.empty(edges.rows, dtype=index_dtype)
-    w_all = np.empty(edges.rows if edges.weighted else 0, dtype=np.float32)
+    in_memory = edges.rows * in_memory_bytes_per_row(index_dtype, edges.weighted) <= edge_bytes
+    scratch = writer.scratch()
+    rows = EdgeRows(edges.rows, index_dtype, edges.weighted, None if in_memory else scratch / "edges.bin")
     counts = np.zeros(node_count, dtype=np.int64)
-    loops, filled, dropped = 0, 0, 0
+    loops, dropped = 0, 0
+    no_weight = np.empty(0, dtype=np.float32)
     reader = con.sql(query).to_arrow_reader(batch_rows)
     with progress(total=edges.rows, desc="ingest edges", unit="edge") as bar:
         for batch in reader:
@@ -75,43 +75,29 @@ def build_csr(con, edges, node_count, index_dtype, writer, batch_rows, drop_unkn
                 known = pa.compute.and_(batch.column(0).is_valid(), batch.column(1).is_valid())
                 dropped += len(batch) - pa.compute.sum(known).as_py()
                 batch = batch.filter(known)
-            u_col, v_col = batch.column(0), batch.column(1)
-            u = u_col.to_numpy().astype(index_dtype, copy=False)
-            v = v_col.to_numpy().astype(index_dtype, copy=False)
-            stop = filled + len(u)
-            u_all[filled:stop], v_all[filled:stop] = u, v
+            u = batch.column(0).to_numpy().astype(index_dtype, copy=False)
+            v = batch.column(1).to_numpy().astype(index_dtype, copy=False)
+            w = no_weight
             if edges.weighted:
                 w = batch.column(2).to_numpy(zero_copy_only=False)
                 if not np.all((w > 0) & (w < np.inf)):  # also false for NaN and null
                     reader.close()
                     _explain_weight(edges)
-                w_all[filled:stop] = w
+            rows.append(u, v, w)
             loops += count_endpoints(u, v, counts)
-            filled = stop
             bar.update(len(u))
+    filled = rows.count
     if filled == loops:
         raise InputError(f"--edges: none of the {edges.rows} edge rows joins two different known nodes; "
                          "the graph has no edges")
-    indptr = np.zeros(node_count + 1, dtype=np.int64)
-    np.cumsum(counts, out=indptr[1:])
-    del counts
-    nnz = int(indptr[-1])
-    indices = np.empty(nnz, dtype=index_dtype)
-    weights = np.empty(nnz if edges.weighted else 0, dtype=np.float32)
-    # Rows dropped as unknown leave the tail of u_all/v_all unfilled: scatter only what was read.
-    scatter_edges(u_all[:filled], v_all[:filled], w_all[:filled], indptr[:-1].copy(), indices, weights)
-    del u_all, v_all, w_all
-    kept = np.empty(node_count, dtype=np.int64)
-    sort_unique_rows(indptr, indices, weights, kept)
-    new_indptr = np.empty_like(indptr)
-    compact_rows(indptr, kept, indices, weights, new_indptr)
-    unique = int(new_indptr[-1])
-    writer.save("indptr", new_indptr)
-    writer.save("indices", indices[:unique])
-    if edges.weighted:
-        writer.save("weight", weights[:unique])
+    if in_memory:
+        unique, blocks = build_in_memory(rows, counts, writer), 1
+    else:
+        with progress(total=None, desc="ingest blocks", unit="block") as bar:
+            unique, blocks = build_in_blocks(rows, counts, writer, edge_bytes, scratch, bar)
     return {"edge_rows": int(filled + dropped), "unknown_dropped": int(dropped), "self_loops_dropped": int(loops),
-            "undirected_edges": unique // 2, "repeats_merged": int(filled - loops - unique // 2)}
+            "undirected_edges": unique // 2, "repeats_merged": int(filled - loops - unique // 2),
+            "row_blocks": int(blocks)}
 
 
 def _explain_unmapped(con, edges):

@@ -4,9 +4,11 @@ import time
 import numpy as np
 import pyarrow as pa
 
-from .edges import BYTES_PER_EDGE_ROW, EdgeFiles, build_csr, register_ids, scan_error
+from .arrayfile import NpyFile
+from .errors import BudgetError, InputError
+from .edges import EdgeFiles, build_csr, register_ids, scan_error
 from .fingerprint import fingerprints
-from .memory import DEFAULT_BUDGET, MIB, format_size, parse_size, peak_rss, require, working_memory
+from .memory import DEFAULT_BUDGET, FIXED_OVERHEAD, MIB, format_size, parse_size, peak_rss, working_memory
 from .nodetable import NodeTable, copy_npy_features
 from .runtime import set_threads
 from .sources import edge_files, regular_file
@@ -60,27 +62,19 @@ def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, thr
     partitions = EdgeFiles(edge_files(edges), table.id_kind)
     n = table.rows
     index_dtype = np.int32 if n < 2**31 - 1 else np.int64
-    spare = working_memory(budget, "ingest")
-    # The CSR build holds every edge row in memory (out-of-core ingest is planned separately).
-    require(budget, partitions.rows * BYTES_PER_EDGE_ROW + n * 64, "ingest of "
-            f"{partitions.rows:,} edge rows")
-    duck_bytes = max(256 * MIB, spare - partitions.rows * BYTES_PER_EDGE_ROW)
+    duck_bytes, edge_bytes, chunk_bytes = _plan(budget, n, partitions.rows)
     inputs = {"edges": fingerprints(partitions.files), "nodes": fingerprints([nodes])}
     if features is not None:
         inputs["features"] = fingerprints([features])
     params = {"edges": str(edges), "nodes": str(nodes), "drop_unknown": bool(drop_unknown),
               "features": None if features is None else str(features)}
     with store.locked(), store.begin("graph", params=params, inputs=inputs) as writer:
-        chunk_bytes = max(16 * MIB, spare // 8)
         if features is None:
-            out = writer.array("features", (n, table.feature_dim()), np.float32)
-            table.copy_features(out, chunk_bytes)
+            dim = table.feature_dim()
+            with _row_writer(writer, "features", n, dim) as out:
+                table.copy_features(out, chunk_bytes)
         else:
-            out = copy_npy_features(features, n, lambda d: writer.array("features", (n, d), np.float32),
-                                    chunk_bytes)
-        dim = out.shape[1]
-        out.flush()
-        del out
+            dim = copy_npy_features(features, n, lambda d: _row_writer(writer, "features", n, d), chunk_bytes)
         writer.write_table("node_id", pa.table({"node_id": table.ids}))
         writer.save("split", table.split)
         writer.save("label", table.label)
@@ -88,7 +82,7 @@ def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, thr
         register_ids(con, table.ids, index_dtype)
         try:
             counts = build_csr(con, partitions, n, index_dtype, writer, batch_rows=1 << 20,
-                               drop_unknown=drop_unknown)
+                               edge_bytes=edge_bytes, drop_unknown=drop_unknown)
         except (duckdb.Error, OSError) as exc:  # DuckDB errors met mid-stream arrive as Arrow's OSError
             raise scan_error(exc, partitions, budget) from None
         con.close()
@@ -98,6 +92,49 @@ def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, thr
         writer.info.update(summary)
     summary.update(seconds=round(time.time() - started, 3), peak_rss=peak_rss())
     return summary
+
+
+# Bytes per node held through the whole stage: the id map (id + index), split, label, entry
+# counts and the row pointers being built.
+NODE_BYTES = 8 + 4 + 1 + 8 + 8 + 16
+# What DuckDB's hash join needs per node of the id map, and at least, to stream the join; its
+# resident set runs about this much above its memory_limit (measured on 2 threads).
+DUCKDB_NODE_BYTES = 64
+DUCKDB_MIN = 256 * MIB
+DUCKDB_SLACK = 160 * MIB
+
+
+def _plan(budget, nodes, edge_rows):
+    """Split the budget: DuckDB's limit, the edge build's share, the feature copy's chunk."""
+    spare = working_memory(budget, "ingest")
+    duck = min(max(DUCKDB_MIN, nodes * DUCKDB_NODE_BYTES), max(DUCKDB_MIN, spare // 3))
+    held = duck + DUCKDB_SLACK + nodes * NODE_BYTES + (1 << 20) * 48  # 48 B per row of Arrow batches
+    edge_bytes = spare - held
+    if edge_bytes < 64 * MIB:
+        need = held + 64 * MIB + FIXED_OVERHEAD
+        raise BudgetError(f"--memory-budget {format_size(budget)} is too small to ingest {nodes:,} nodes: "
+                          f"use at least {format_size(need)}")
+    return duck, edge_bytes, max(16 * MIB, edge_bytes // 4)
+
+
+class _row_writer:
+    """Rows of a new ``.npy`` of the stage written with plain I/O (no lingering mapped pages)."""
+
+    def __init__(self, writer, name, rows, dim):
+        created = writer.array(name, (rows, dim), np.float32)
+        del created
+        self.file = NpyFile(writer.path / f"{name}.npy", writable=True)
+        self.shape = (rows, dim)
+
+    def __setitem__(self, rows, block):
+        self.file.write(rows.start, block)
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.file.close()
+        return False
 
 
 def _duckdb(spill_dir, memory_bytes, threads):

@@ -1,8 +1,11 @@
 """Reading and checking the node table: ids, splits, labels and features."""
+import os
+
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from .arrayfile import NpyFile
 from .errors import InputError
 from .memory import chunk_ranges, rows_per_chunk
 from .schema import NO_LABEL, NO_SPLIT, SPLIT_CODES
@@ -146,23 +149,28 @@ def copy_npy_features(path, rows, out_factory, chunk_bytes):
         if fh.read(6) != b"\x93NUMPY":  # else np.load tries pickle and talks about that
             raise InputError(f"--features {path}: not a .npy file (no NumPy header); write it with numpy.save")
     try:
-        source = np.load(path, mmap_mode="r")
+        source = NpyFile(path)
     except (OSError, ValueError) as exc:
         raise InputError(f"--features {path}: not a readable .npy file ({exc})") from None
-    if source.ndim != 2 or not np.issubdtype(source.dtype, np.number):
-        raise InputError(f"--features {path}: holds a {source.dtype} array of shape {source.shape}; "
-                         "use a 2-D float array, one row per node")
-    if source.shape[0] != rows:
-        raise InputError(f"--features {path}: has {source.shape[0]} rows but the node table has {rows}; "
-                         "row i must be the node in row i of --nodes")
-    out = out_factory(source.shape[1])
-    step = rows_per_chunk(chunk_bytes, 8 * source.shape[1], at_least=1024)
-    for start, stop in chunk_ranges(rows, step):
-        block = np.asarray(source[start:stop], dtype=np.float32)
-        _check_finite(block, start, f"--features {path}:")
-        out[start:stop] = block
-    del source
-    return out
+    expected = source.offset + int(np.prod(source.shape, dtype=np.int64)) * source.dtype.itemsize
+    if os.path.getsize(path) < expected:
+        source.close()
+        raise InputError(f"--features {path}: not a readable .npy file (it ends before its "
+                         f"{source.shape} {source.dtype} data does; was it cut short?)")
+    with source:
+        if len(source.shape) != 2 or not np.issubdtype(source.dtype, np.number):
+            raise InputError(f"--features {path}: holds a {source.dtype} array of shape {source.shape}; "
+                             "use a 2-D float array, one row per node")
+        if source.shape[0] != rows:
+            raise InputError(f"--features {path}: has {source.shape[0]} rows but the node table has {rows}; "
+                             "row i must be the node in row i of --nodes")
+        step = rows_per_chunk(chunk_bytes, 8 * source.shape[1], at_least=1024)
+        with out_factory(source.shape[1]) as out:
+            for start, stop in chunk_ranges(rows, step):
+                block = source.read(start, stop).astype(np.float32, copy=False)
+                _check_finite(block, start, f"--features {path}:")
+                out[start:stop] = block
+    return source.shape[1]
 
 
 def _check_finite(block, first_row, where):

@@ -95,3 +95,36 @@ def compact_rows(indptr, kept, indices, weights, new_indptr):
                 if weighted:
                     weights[dst + j] = weights[src + j]
         new_indptr[r + 1] = dst + count
+
+
+@njit(cache=True)
+def scatter_directed(rows, cols, w, first_row, cursor, indices, weights):
+    """Write directed entries ``rows[i] -> cols[i]`` of one row block into its CSR slots.
+
+    rows, cols : int (e,), read; rows lie in ``first_row .. first_row + len(cursor)``.
+    w : float32 (e,) or (0,), read. cursor : int64 (block rows,), the next free slot of each
+    row relative to the block, updated. indices, weights : the block's slots, filled.
+    """
+    weighted = weights.shape[0] > 0
+    for i in range(rows.shape[0]):
+        r = rows[i] - first_row
+        p = cursor[r]
+        indices[p] = cols[i]
+        if weighted:
+            weights[p] = w[i]
+        cursor[r] = p + 1
+
+
+@njit(cache=True)
+def block_bounds(counts, limit):
+    """Split rows into consecutive blocks holding at most ``limit`` entries each (a row larger
+    than ``limit`` gets a block of its own). counts : int64 (n,), read. Returns int64 bounds."""
+    bounds = [0]
+    total = 0
+    for r in range(counts.shape[0]):
+        if total > 0 and total + counts[r] > limit:
+            bounds.append(r)
+            total = 0
+        total += counts[r]
+    bounds.append(counts.shape[0])
+    return np.array(bounds, dtype=np.int64)
