@@ -127,8 +127,10 @@ class StageWriter:
         if not root.exists():
             root.mkdir(parents=True)
             self._created_store = True
-        self.store.manifest()  # refuse a store of a newer format before writing anything
+        manifest = self.store.manifest()  # refuse a store of a newer format before writing anything
         _sweep_staging(root / STAGING)
+        if str(root.resolve()) in _HELD:
+            _sweep_orphans(root, manifest)
         token = f"{self.stage}-{os.getpid()}-{uuid.uuid4().hex[:8]}"
         self.path = root / STAGING / token
         self.path.mkdir(parents=True)
@@ -280,6 +282,16 @@ def _sweep_staging(staging):
         pid = int(parts[1]) if len(parts) > 2 and parts[1].isdigit() else None
         if pid is None or not _alive(pid):
             shutil.rmtree(leftover, ignore_errors=True)
+
+
+def _sweep_orphans(root, manifest):
+    """Remove stage directories the manifest does not name: left by a process killed between
+    renaming its stage into place and committing the manifest. Only safe under the lock."""
+    named = {entry["dir"] for entry in manifest["stages"].values()}
+    for path in root.iterdir():
+        stage, _, token = path.name.partition("-")
+        if (path.is_dir() and stage in DOWNSTREAM and len(token) == 12 and path.name not in named):
+            shutil.rmtree(path, ignore_errors=True)
 
 
 def _alive(pid):

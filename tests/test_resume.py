@@ -222,3 +222,23 @@ def test_full_disk_simulated(scenario, tmp_path, capsys, monkeypatch):
     monkeypatch.undo()
     assert main(["status", "--store", str(store)]) == 0
     assert json.loads((store / "manifest.json").read_text())["stages"]["graph"]["info"]["nodes"] == 2000
+
+
+def test_orphan_stage_dir_is_swept_under_the_lock(tmp_path):
+    """A kill between the stage rename and the manifest write leaves a directory no manifest
+    names; the next locked stage removes it and keeps the committed ones."""
+    from conftest import random_symmetric, write_graph_store
+
+    import numpy as np
+    from bigprune.store import Store
+
+    rng = np.random.default_rng(0)
+    store = write_graph_store(tmp_path / "s", random_symmetric(20, 0.3, rng), np.ones((20, 2)),
+                              np.ones(20), np.zeros(20))
+    orphan = tmp_path / "s" / "propagate-0123456789ab"
+    orphan.mkdir()
+    (orphan / "hop_1.npy").write_bytes(b"partial")
+    kept = store.entry("graph")["dir"]
+    with store.locked(), store.begin("propagate", params={}) as writer:
+        writer.save("hop_1", np.zeros((20, 2), np.float32))
+    assert not orphan.exists() and (tmp_path / "s" / kept).is_dir()
