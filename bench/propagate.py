@@ -9,8 +9,13 @@ graph (cached); its peak RSS covers the whole stage, PageRank and imports includ
 is the product alone, with the normalised matrix (self loops included, float32) built beforehand
 by this script and loaded whole.
 
+The bigprune side runs with ``--budget`` (default 64GiB: in memory); a budget that cannot hold
+the CSR and X whole makes it take the 2-D grid way, and the report then says whether its peak
+RSS stayed within the budget.
+
     python3 bench/propagate.py                          # 2M nodes, 20M edges, d = 64
     python3 bench/propagate.py --nodes 200000 --edges 2000000
+    python3 bench/propagate.py --budget 1G --hops 2     # X (512 MB) + CSR do not fit: grid
 """
 import os
 import sys
@@ -32,6 +37,8 @@ import numpy as np  # noqa: E402
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
+from bigprune.memory import parse_size  # noqa: E402
+
 
 def main():
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
@@ -42,6 +49,9 @@ def main():
     parser.add_argument("--order", choices=("random", "degree"), default="random",
                         help="node order: shuffled ids, or by falling degree (better locality)")
     parser.add_argument("--threads", type=int, default=None)
+    parser.add_argument("--budget", default="64GiB", help="bigprune's --memory-budget")
+    parser.add_argument("--hops", type=int, default=1, help="bigprune's hops (scipy does one)")
+    parser.add_argument("--dtype", default="float32", choices=("float32", "float16"))
     parser.add_argument("--seed", type=int, default=0)
     parser.add_argument("--workdir", default=None, help="where to put the temporary store")
     parser.add_argument("--side", choices=sorted(SIDES), help=argparse.SUPPRESS)
@@ -71,6 +81,12 @@ def _compare(args, store):
           f"{ours['stage_seconds']:.1f} s, PageRank {ours['pagerank_seconds']:.1f} s in "
           f"{ours['pagerank_steps']} steps), threads {ours['threads']}, peak RSS "
           f"{ours['peak_rss'] / 2**30:.2f} GiB")
+    budget = parse_size(args.budget)
+    built = f" (grid built in {ours['grid_seconds']} s)" if ours["grid_seconds"] is not None else ""
+    print(f"bigprune way: {ours['way']} {ours['plan']}, hops {args.hops} taking "
+          f"{ours['all_hop_seconds']} s{built}, dtype {args.dtype}; --memory-budget {args.budget}: peak "
+          f"RSS {ours['peak_rss'] / budget:.0%} of it "
+          f"({'within' if ours['peak_rss'] <= budget else 'OVER'})")
     print(f"scipy hop:    {theirs['hop_seconds']:.3f} s, peak RSS "
           f"{theirs['peak_rss'] / 2**30:.2f} GiB")
     print(f"speed ratio (scipy time / bigprune time): "
@@ -81,7 +97,8 @@ def _compare(args, store):
 
 def _side(args, side, store):
     command = [sys.executable, __file__, "--side", side, "--store", str(store)]
-    for option in ("nodes", "edges", "dims", "gamma", "order", "threads", "seed"):
+    for option in ("nodes", "edges", "dims", "gamma", "order", "threads", "seed", "budget", "hops",
+                   "dtype"):
         if getattr(args, option) is not None:
             command += [f"--{option}", str(getattr(args, option))]
     done = subprocess.run(command, check=True, stdout=subprocess.PIPE, text=True)
@@ -160,20 +177,30 @@ def write_normalised(tmp, indptr, indices):
 
 def _run_bigprune(store, args):
     threads = args.threads
+    import bigprune.memory as memory
     from bigprune.propagate import propagate
     from bigprune.store import Store
 
-    # Warm up: load (or compile once) the kernels for the same dtypes on a tiny graph.
+    # Warm up: load (or compile once) the kernels for the same dtypes on a tiny graph, both ways
+    # (a budget of a few kB with no fixed overhead counted forces the grid).
     tiny_indptr = np.array([0, 1, 2], dtype=np.int64)
     tiny_indices = np.array([1, 0], dtype=np.int32)
+    fixed = memory.FIXED_OVERHEAD
     with tempfile.TemporaryDirectory() as tmp:
         write_store(Path(tmp) / "tiny", tiny_indptr, tiny_indices, np.ones((2, 4), dtype=np.float32))
-        propagate(Path(tmp) / "tiny", hops=1, threads=threads)
-    summary = propagate(store, hops=1, memory_budget="64GiB", threads=threads)
+        for budget in ("4GiB", 1):
+            memory.FIXED_OVERHEAD = 0 if budget == 1 else fixed
+            propagate(Path(tmp) / "tiny", hops=1, threads=threads, dtype=args.dtype,
+                      memory_budget=budget if budget != 1 else 200_000, norm="rw")
+    memory.FIXED_OVERHEAD = fixed
+    summary = propagate(store, hops=args.hops, memory_budget=args.budget, threads=threads,
+                        dtype=args.dtype)
     info = Store(store).entry("propagate")["info"]
     return {"hop_seconds": info["hop_seconds"][0], "stage_seconds": summary["seconds"],
             "pagerank_seconds": info["pagerank_seconds"], "pagerank_steps": info["pagerank_steps"],
-            "threads": info["threads"], "peak_rss": summary["peak_rss"]}
+            "threads": info["threads"], "peak_rss": summary["peak_rss"], "way": info["way"],
+            "plan": {k: v for k, v in info["plan"].items() if v}, "all_hop_seconds": info["hop_seconds"],
+            "grid_seconds": info.get("grid_seconds")}
 
 
 def _run_scipy(store, args):
@@ -194,12 +221,14 @@ def _run_scipy(store, args):
     ours = Store(store).load("propagate", "hop_1")
     diff = biggest = 0.0
     for start in range(0, n, 1 << 16):  # bounded windows of the mapped result
-        part = np.asarray(ours[start:start + (1 << 16)])
+        part = np.asarray(ours[start:start + (1 << 16)], dtype=np.float32)
         diff = max(diff, float(np.abs(part - y[start:start + (1 << 16)]).max()))
         biggest = max(biggest, float(np.abs(part).max()))
-    # Both sides sum in float32 in different orders: allow a few ulps of the largest value.
+    # Both sides sum in float32 in different orders: allow a few ulps of the largest value
+    # (float16 storage: a rounding step of 2**-11 relative).
+    ulps = 1e-5 if ours.dtype == np.float32 else 2.0 ** -10
     return {"hop_seconds": seconds, "peak_rss": peak, "max_abs_diff": diff, "max_abs": biggest,
-            "agree": diff <= 1e-5 * max(1.0, biggest)}
+            "agree": diff <= ulps * max(1.0, biggest)}
 
 
 SIDES = {"build": _build, "bigprune": _run_bigprune, "scipy": _run_scipy}

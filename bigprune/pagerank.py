@@ -1,6 +1,8 @@
 """PageRank (Page et al., 1999) by power iteration over the graph stage's CSR.
 
-The propagate stage computes it (see :mod:`bigprune.propagate`); :func:`pagerank_scores` reads it.
+The propagate stage computes it (see :mod:`bigprune.propagate`), with the CSR in memory or
+streamed from its files one chunk of entries per read when it does not fit the budget (the four
+float64 n-vectors stay in memory); :func:`pagerank_scores` reads it.
 Dangling rows (isolated nodes, or rows whose weights sum to zero) spread their mass uniformly and
 teleporting is uniform, as in ``networkx.pagerank``. The stopping rule differs on purpose:
 networkx stops when ``sum |x - x_last| < n * tol``, which for millions of nodes stops before the
@@ -9,7 +11,7 @@ the error left after stopping is at most ``TOL * DAMPING / (1 - DAMPING)`` in L1
 """
 import numpy as np
 
-from .kernels.pagerank import pagerank_step, row_strength
+from .kernels.pagerank import accumulate_rows, finish_step, spread_share
 from .runtime import progress
 from .store import Store
 
@@ -29,14 +31,15 @@ def pagerank_scores(store):
     return store.load("propagate", "pagerank")
 
 
-def power_iteration(indptr, indices, weights, damping=DAMPING, tol=TOL, max_iter=MAX_ITER):
-    """PageRank of a symmetric CSR adjacency.
+def power_iteration(indptr, chunks, damping=DAMPING, tol=TOL, max_iter=MAX_ITER):
+    """PageRank of a symmetric CSR adjacency whose entries arrive in chunks.
 
     Parameters
     ----------
     indptr : int64 (n + 1,)
-    indices : int32 or int64 (nnz,)
-    weights : float32 (nnz,), or (0,) for an unweighted graph
+    chunks : callable returning an iterator of ``(first entry, indices, weights)``, each step
+        calling it once (see :func:`bigprune.arrayfile.edge_chunks`: the whole CSR in memory as
+        one chunk, or streamed from its files); ``weights`` is (0,) for an unweighted graph.
     damping, tol, max_iter : the damping factor, the L1 change to stop at, the step limit
 
     Returns
@@ -46,16 +49,22 @@ def power_iteration(indptr, indices, weights, damping=DAMPING, tol=TOL, max_iter
     change : float, the L1 change of the last step (``>= tol`` only if ``max_iter`` ran out)
     """
     n = indptr.shape[0] - 1
-    strength = np.empty(n, dtype=np.float64)
-    row_strength(indptr, weights, strength)
-    inv_strength = np.divide(1.0, strength, out=np.zeros(n), where=strength > 0)
-    del strength
+    none = np.zeros(0)
+    inv_strength = np.zeros(n)
+    for first, indices, weights in chunks():
+        accumulate_rows(indptr, first, indices, weights, none, inv_strength)
+    np.divide(1.0, inv_strength, out=inv_strength, where=inv_strength > 0)
     x = np.full(n, 1.0 / max(n, 1))
     x_new, share = np.empty(n), np.empty(n)
     change, steps = (np.inf if n else 0.0), 0
     with progress(desc="pagerank", unit="step") as bar:
         while steps < max_iter and change >= tol:
-            change = pagerank_step(indptr, indices, weights, inv_strength, x, damping, share, x_new)
+            dangling = spread_share(x, inv_strength, share)
+            x_new[:] = 0.0
+            for first, indices, weights in chunks():
+                accumulate_rows(indptr, first, indices, weights, share, x_new)
+            teleport = (damping * dangling + (1.0 - damping)) / max(n, 1)
+            change = finish_step(x, damping, teleport, x_new)
             x, x_new = x_new, x
             steps += 1
             bar.update(1)

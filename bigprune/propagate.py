@@ -2,33 +2,41 @@
 
 ``X_{k+1} = Â X_k`` with ``Â = D^-1/2 (A+I) D^-1/2`` ("sym") or ``D^-1 (A+I)`` ("rw"), where D is
 the weighted degree plus one for the self loop and edge weights are ``weight.npy`` when the graph
-has one, else 1. Each hop reads ``X_k`` whole into memory and fills ``hop_{k+1}.npy`` through a
-memory map of one block of rows at a time, flushed and closed before the next, because pages of a
-mapped file count in RSS while they are mapped.
+has one, else 1. Sums are float32; hops are stored as float32 or float16 (``dtype``), and each
+hop reads the previous one as stored. :mod:`bigprune.hopplan` picks the way from the budget:
+in memory (the CSR and ``X_k`` whole, the output written one block of rows at a time), or by 2-D
+grid partitioning (:mod:`bigprune.grid`) when they do not fit. With ``restrict`` only the rows
+that later stages read are computed (:mod:`bigprune.restrict`); the others hold NaN.
+Files are read and written with plain file I/O (:mod:`bigprune.arrayfile`), never mapped, so
+the peak RSS is what the plan counted.
 """
 import operator
 import time
+from contextlib import nullcontext
 
 import numpy as np
 
 from . import pagerank as _pagerank
+from . import grid as _grid
+from .arrayfile import NpyFile, edge_chunks
 from .errors import InputError
-from .kernels.spmm import balanced_bounds, scale_rows, smooth_rows, weighted_degree
-from .memory import (DEFAULT_BUDGET, MIB, chunk_ranges, parse_size, peak_rss, require,
-                     rows_per_chunk, working_memory)
+from .hopplan import plan
+from .kernels.pagerank import accumulate_rows
+from .kernels.spmm import balanced_bounds, scale_rows, smooth_rows
+from .memory import DEFAULT_BUDGET, chunk_ranges, parse_size, peak_rss
+from .restrict import needed_through, skipped_per_hop
 from .runtime import progress, set_threads
 from .store import Store
 
 NORMS = ("sym", "rw")
-# The output is written through a map of one block of rows at a time; a block is at most this
-# large (smaller when the budget is tight) and at least MIN_BLOCK_ROWS rows (or all of them).
-BLOCK_BYTES = 64 * MIB
-MIN_BLOCK_ROWS = 1024
+DTYPES = {"float32": np.float32, "float16": np.float16}
+MAX_RESTRICTED_HOPS = 127  # the needed-hop count per row is an int8
 # Parallel tasks per thread within a block, so that a slow run of rows does not idle the others.
 TASKS_PER_THREAD = 8
 
 
-def propagate(store, hops=2, norm="sym", memory_budget=DEFAULT_BUDGET, threads=None):
+def propagate(store, hops=2, norm="sym", memory_budget=DEFAULT_BUDGET, threads=None,
+              dtype="float32", restrict=False):
     """Smooth the graph stage's features over ``hops`` hops and compute PageRank; commit both.
 
     Parameters
@@ -41,6 +49,13 @@ def propagate(store, hops=2, norm="sym", memory_budget=DEFAULT_BUDGET, threads=N
         Bytes (``4GiB``, ``512M``, ...) that bound the stage's peak RSS.
     threads : int, optional
         Defaults to every core this process may use.
+    dtype : {"float32", "float16"}
+        How hops are stored; sums are float32 either way.
+    restrict : bool
+        Compute at each hop only the rows that the training pool, the validation and test
+        splits need at the last hop (and, through them, at earlier hops); the other rows hold
+        NaN and ``computed_through.npy`` (int8, n) gives the last hop each row was computed
+        at. Off by default: ``select --targets unlabeled`` reads rows it leaves out.
 
     Returns
     -------
@@ -52,15 +67,21 @@ def propagate(store, hops=2, norm="sym", memory_budget=DEFAULT_BUDGET, threads=N
     hops = _whole(hops, "--hops", 1)
     if norm not in NORMS:
         raise InputError(f"--norm {norm!r} must be one of: {', '.join(NORMS)}")
+    if dtype not in DTYPES:
+        raise InputError(f"--dtype {dtype!r} must be one of: {', '.join(DTYPES)}")
+    if restrict and hops > MAX_RESTRICTED_HOPS:
+        raise InputError(f"--hops {hops} is too many for --restrict: use at most "
+                         f"{MAX_RESTRICTED_HOPS}, or --no-restrict")
     budget = parse_size(memory_budget)
     threads = set_threads(threads)
-    return _propagate(store, hops, norm, budget, threads)
+    return _propagate(store, hops, norm, budget, threads, dtype, bool(restrict))
 
 
 def embedding(store, hop=None):
-    """The features after ``hop`` hops, float32 (n, d), memory-mapped read-only.
+    """The features after ``hop`` hops, (n, d) float32 or float16 as stored, memory-mapped read-only.
 
     ``hop=None`` gives the last hop committed; ``hop=0`` the graph stage's features as stored.
+    After a restricted run, rows not computed at ``hop`` are NaN (see ``computed_through``).
     """
     store = store if isinstance(store, Store) else Store(store)
     if hop is not None and _whole(hop, "--hop", 0) == 0:
@@ -83,91 +104,155 @@ def _whole(value, option, least):
     return number
 
 
-def _propagate(store, hops, norm, budget, threads):
+def _propagate(store, hops, norm, budget, threads, dtype, restrict):
     started = time.perf_counter()
     graph_entry = store.entry("graph")
     graph = store.path / graph_entry["dir"]
-    params = {"hops": hops, "norm": norm, "pagerank_damping": _pagerank.DAMPING,
-              "pagerank_tol": _pagerank.TOL}
+    params = {"hops": hops, "norm": norm, "dtype": dtype, "restrict": restrict,
+              "pagerank_damping": _pagerank.DAMPING, "pagerank_tol": _pagerank.TOL}
     inputs = {"graph": graph_entry["dir"]}
     done = store.manifest()["stages"].get("propagate")
     if done and done["params"] == params and done["inputs"] == inputs:
         return {"hops": hops, "norm": norm, "seconds": 0.0, "peak_rss": peak_rss(), "skipped": True}
 
-    features = np.load(graph / "features.npy", mmap_mode="r")
-    n, d = features.shape
-    del features
+    with NpyFile(graph / "features.npy") as features, NpyFile(graph / "indices.npy") as indices:
+        (n, d), nnz, index_bytes = features.shape, indices.shape[0], indices.dtype.itemsize
     weighted = (graph / "weight.npy").exists()
-    block_rows = _plan(graph, n, d, weighted, budget)
-
-    indptr = np.load(graph / "indptr.npy")
-    indices = np.load(graph / "indices.npy")
-    weights = np.load(graph / "weight.npy") if weighted else np.zeros(0, dtype=np.float32)
-    left, right = _scales(indptr, weights, norm)
-    bounds = np.empty(threads * TASKS_PER_THREAD + 1, dtype=np.int64)
+    storage = np.dtype(DTYPES[dtype])
+    chosen = plan(n, d, nnz, index_bytes, weighted, storage.itemsize, restrict, budget)
     with store.begin("propagate", params=params, inputs=inputs) as writer:
-        x = np.ascontiguousarray(np.load(graph / "features.npy"), dtype=np.float32)
-        hop_seconds = []
-        for hop in range(1, hops + 1):
-            tic = time.perf_counter()
-            if right is not None:  # scale X_k's rows once rather than each gathered row
-                scale_rows(x, right)
-            path = writer.path / f"hop_{hop}.npy"
-            offset = writer.array(f"hop_{hop}", (n, d), np.float32).offset
-            with progress(total=n, desc=f"propagate hop {hop}/{hops}", unit="row") as bar:
-                for start, stop in chunk_ranges(n, block_rows):
-                    # A window map per block: its pages leave RSS when it is closed.
-                    window = np.memmap(path, dtype=np.float32, mode="r+", shape=(stop - start, d),
-                                       offset=offset + start * d * 4)
-                    balanced_bounds(indptr, start, stop, bounds.shape[0] - 1, bounds)
-                    smooth_rows(indptr, indices, weights, left, x, bounds, np.asarray(window))
-                    window.flush()
-                    del window
-                    bar.update(stop - start)
-            del x
-            hop_seconds.append(round(time.perf_counter() - tic, 3))
-            x = np.load(path) if hop < hops else None
-        del left, right
-        tic = time.perf_counter()
-        scores, steps, change = _pagerank.power_iteration(indptr, indices, weights)
-        writer.save("pagerank", scores)
-        writer.info.update({
-            "nodes": int(n), "dims": int(d), "nnz": int(indices.shape[0]), "weighted": weighted,
-            "threads": threads, "block_rows": block_rows, "hop_seconds": hop_seconds,
-            "pagerank_seconds": round(time.perf_counter() - tic, 3),
-            "pagerank_steps": steps, "pagerank_change": change,
-        })
+        run = _grid_hops if chosen.grid else _memory_hops
+        info = run(graph, writer, n, d, hops, norm, storage, restrict, chosen, threads)
+        writer.info.update({"nodes": int(n), "dims": int(d), "nnz": int(nnz), "weighted": weighted,
+                            "threads": threads, "way": "grid" if chosen.grid else "memory",
+                            "plan": chosen._asdict(), **info})
     return {"hops": hops, "norm": norm, "seconds": round(time.perf_counter() - started, 3),
             "peak_rss": peak_rss()}
 
 
-def _plan(graph, n, d, weighted, budget):
-    """Rows per output block; refuse up front unless the CSR and X_k fit whole beside one block.
+def _memory_hops(graph, writer, n, d, hops, norm, storage, restrict, chosen, threads):
+    """Hops and PageRank with the CSR and X_k whole in memory."""
+    indptr = np.load(graph / "indptr.npy")
+    indices = np.load(graph / "indices.npy")
+    weights = np.load(graph / "weight.npy") if (graph / "weight.npy").exists() else None
+    chunks = edge_chunks(indices, weights, 0)
+    left, right = _scales(indptr, chunks, norm)
+    through = needed_through(graph, hops, indptr, chunks) if restrict else None
+    weights_or_none = np.zeros(0, dtype=np.float32) if weights is None else weights
+    bounds = np.empty(threads * TASKS_PER_THREAD + 1, dtype=np.int64)
+    block = np.empty((min(n, chosen.block_rows), d), dtype=np.float32)
+    x = np.empty((n, d), dtype=np.float32)
+    hop_seconds = []
+    for hop in range(1, hops + 1):
+        tic = time.perf_counter()
+        with NpyFile(_source_path(graph, writer, hop)) as source:
+            source.read_into(0, x)  # X_k as stored, cast to float32 piece by piece
+        if right is not None:  # scale X_k's rows once rather than each gathered row
+            scale_rows(x, right)
+        target = _hop_file(writer, hop, n, d, storage)
+        with target, progress(total=n, desc=f"propagate hop {hop}/{hops}", unit="row") as bar:
+            for start, stop in chunk_ranges(n, chosen.block_rows):
+                balanced_bounds(indptr, start, stop, bounds.shape[0] - 1, bounds)
+                smooth_rows(indptr, indices, weights_or_none, left, x,
+                            _or_empty(through), hop, bounds, block[:stop - start])
+                target.write(start, block[:stop - start])
+                bar.update(stop - start)
+        hop_seconds.append(round(time.perf_counter() - tic, 3))
+    del x, block, left, right
+    info = _finish(writer, hops, through, hop_seconds)
+    del through  # committed: PageRank's phase does not hold it
+    info.update(_pagerank_info(writer, indptr, chunks))
+    info["block_rows"] = chosen.block_rows
+    return info
 
-    A hop holds the CSR, X_k (float32 n x d), two float32 row scales and one mapped output block;
-    PageRank holds the CSR and five float64 n-vectors. Holding X_k whole needs no second matrix:
-    the output goes to disk block by block and is read back only after X_k is released.
-    """
-    indices = np.load(graph / "indices.npy", mmap_mode="r")
-    nnz = indices.shape[0]
-    csr = 8 * (n + 1) + indices.itemsize * nnz + (4 * nnz if weighted else 0)
-    row = 4 * d
-    hop = csr + row * n + 2 * 4 * n
-    smallest = hop + row * min(n, MIN_BLOCK_ROWS)
-    what = (f"propagating {n:,} x {d} features in memory (out-of-core propagation is not "
-            f"available yet)")
-    require(budget, max(smallest, csr + 5 * 8 * n), what)
-    return rows_per_chunk(min(BLOCK_BYTES, working_memory(budget, what) - hop), row)
+
+def _grid_hops(graph, writer, n, d, hops, norm, storage, restrict, chosen, threads):
+    """Hops by 2-D grid partitioning and PageRank over the streamed CSR."""
+    indptr = np.load(graph / "indptr.npy")
+    with NpyFile(graph / "indices.npy") as indices, _optional(graph / "weight.npy") as weights:
+        chunks = edge_chunks(indices, weights, chosen.edge_rows)
+        scratch = writer.scratch()
+        left, right = _scales(indptr, chunks, norm)
+        np.save(scratch / "left.npy", left)  # for "sym" left and right are one array
+        sym = right is not None
+        del left, right
+        through = needed_through(graph, hops, indptr, chunks) if restrict else None
+        tic = time.perf_counter()
+        grid = _grid.build(graph, indptr, chosen.out_rows, chosen.src_rows, chosen.edge_rows, scratch)
+        build_seconds = round(time.perf_counter() - tic, 3)
+        del indptr
+        hop_seconds = []
+        left = NpyFile(scratch / "left.npy")
+        right = NpyFile(scratch / "left.npy") if sym else None
+        for hop in range(1, hops + 1):
+            tic = time.perf_counter()
+            with NpyFile(_source_path(graph, writer, hop)) as source, \
+                    _hop_file(writer, hop, n, d, storage) as target:
+                _grid.hop(grid, source, target, left, right, through, hop, chosen.edge_rows, threads)
+            hop_seconds.append(round(time.perf_counter() - tic, 3))
+        left.close()
+        if right is not None:
+            right.close()
+        info = _finish(writer, hops, through, hop_seconds)
+        del through  # committed: PageRank's phase does not hold it
+        if chosen.pagerank_whole:  # PageRank alone fits with the CSR in memory
+            chunks = edge_chunks(np.load(graph / "indices.npy"),
+                                 None if weights is None else np.load(graph / "weight.npy"), 0)
+        info.update(_pagerank_info(writer, np.load(graph / "indptr.npy"), chunks))
+    info.update({"grid_blocks": [len(grid.out_bounds), -(-n // grid.src_rows)],
+                 "grid_seconds": build_seconds})
+    return info
 
 
-def _scales(indptr, weights, norm):
+def _source_path(graph, writer, hop):
+    """Where X_{hop-1} is: the graph's features for the first hop, else the previous hop's file."""
+    return graph / "features.npy" if hop == 1 else writer.path / f"hop_{hop - 1}.npy"
+
+
+def _hop_file(writer, hop, n, d, storage):
+    """The hop's output file, created at full size, open for writes by rows."""
+    mapped = writer.array(f"hop_{hop}", (n, d), storage)
+    path = mapped.filename
+    del mapped  # never touched through the map: no page of it enters RSS
+    return NpyFile(path, writable=True)
+
+
+def _finish(writer, hops, through, hop_seconds):
+    info = {"hop_seconds": hop_seconds, "restricted": through is not None}
+    if through is not None:
+        writer.save("computed_through", through)
+        info["skipped_rows"] = skipped_per_hop(through, hops)
+    return info
+
+
+def _pagerank_info(writer, indptr, chunks):
+    tic = time.perf_counter()
+    scores, steps, change = _pagerank.power_iteration(indptr, chunks)
+    writer.save("pagerank", scores)
+    return {"pagerank_seconds": round(time.perf_counter() - tic, 3), "pagerank_steps": steps,
+            "pagerank_change": change}
+
+
+def _scales(indptr, chunks, norm):
     """Row scales (left, right), float32 (n,), so that Â = diag(left) (A+I) diag(right).
 
     ``right`` is None for "rw", where it would be all ones.
     """
-    degree = np.empty(indptr.shape[0] - 1, dtype=np.float64)
-    weighted_degree(indptr, weights, degree)
+    degree = np.zeros(indptr.shape[0] - 1, dtype=np.float64)
+    for first, indices, weights in chunks():
+        accumulate_rows(indptr, first, indices, weights, np.zeros(0), degree)
+    degree += 1.0  # the self loop
     if norm == "sym":
-        scale = (1.0 / np.sqrt(degree)).astype(np.float32)
-        return scale, scale
-    return (1.0 / degree).astype(np.float32), None
+        np.sqrt(degree, out=degree)
+    np.divide(1.0, degree, out=degree)
+    scale = degree.astype(np.float32)
+    return (scale, scale) if norm == "sym" else (scale, None)
+
+
+def _or_empty(through):
+    return np.zeros(0, dtype=np.int8) if through is None else through
+
+
+def _optional(path):
+    """An :class:`NpyFile` for ``path`` if the file exists, else None, for ``with``."""
+    return NpyFile(path) if path.exists() else nullcontext(None)

@@ -4,7 +4,9 @@ import pytest
 import scipy.sparse as sp
 from conftest import random_symmetric
 
-from bigprune.kernels.spmm import balanced_bounds, scale_rows, smooth_rows, weighted_degree
+from bigprune.kernels.spmm import balanced_bounds, scale_rows, smooth_rows
+
+EVERY_ROW = np.zeros(0, dtype=np.int8)
 
 
 def _graph(n, weighted, index_dtype, seed=3):
@@ -43,16 +45,6 @@ def test_scale_rows_matches_numpy_broadcast():
     np.testing.assert_array_equal(x, expected)
 
 
-@pytest.mark.parametrize("weighted", [False, True])
-def test_weighted_degree_matches_scipy_row_sums(weighted):
-    adj, indptr, _, weights = _graph(90, weighted, np.int32)
-    degree = np.empty(90)
-    weighted_degree(indptr, weights, degree)
-    # reference: scipy.sparse row sums of A + I
-    _, expected = _reference(adj, weights, "rw")
-    np.testing.assert_allclose(degree, expected, rtol=1e-6)
-
-
 @pytest.mark.parametrize("parts", [1, 3, 16, 200])
 def test_balanced_bounds_match_searchsorted(parts):
     _, indptr, _, _ = _graph(120, False, np.int32)
@@ -84,7 +76,7 @@ def test_smooth_rows_matches_scipy_product(norm, weighted, index_dtype, block, d
         stop = min(n, start + block)
         bounds = np.empty(5, dtype=np.int64)
         balanced_bounds(indptr, start, stop, 4, bounds)
-        smooth_rows(indptr, indices, weights, left, scaled, bounds, out[start:stop])
+        smooth_rows(indptr, indices, weights, left, scaled, EVERY_ROW, 1, bounds, out[start:stop])
     # reference: scipy.sparse CSR product Â @ X in float64
     np.testing.assert_allclose(out, hat @ x.astype(np.float64), rtol=1e-5, atol=1e-5)
 
@@ -98,7 +90,27 @@ def test_smooth_rows_keeps_isolated_rows_unchanged():
     scaled = x.copy()
     scale_rows(scaled, right)
     out = np.empty_like(x)
-    smooth_rows(indptr, indices, np.zeros(0, np.float32), left, scaled,
+    smooth_rows(indptr, indices, np.zeros(0, np.float32), left, scaled, EVERY_ROW, 1,
                 np.array([0, 3], dtype=np.int64), out)
     # reference: hand computation of D^-1/2 (A+I) D^-1/2 X (Wu et al., 2019): rows 0, 1 average
     np.testing.assert_allclose(out, [[2.0, 3.0], [2.0, 3.0], [5.0, 6.0]], rtol=1e-6)
+
+
+@pytest.mark.parametrize("level", [1, 2])
+def test_smooth_rows_restricted_computes_needed_rows_only(level):
+    n, d = 90, 5
+    adj, indptr, indices, weights = _graph(n, False, np.int32)
+    x = np.random.default_rng(8).normal(size=(n, d)).astype(np.float32)
+    hat, degree = _reference(adj, weights, "sym")
+    left, right = _scales(degree, "sym")
+    scaled = x.copy()
+    scale_rows(scaled, right)
+    through = (np.arange(n) % 3).astype(np.int8)  # rows 0, 3, ... never; 2, 5, ... to hop 2
+    out = np.zeros((n, d), dtype=np.float32)
+    bounds = np.empty(4, dtype=np.int64)
+    balanced_bounds(indptr, 0, n, 3, bounds)
+    smooth_rows(indptr, indices, weights, left, scaled, through, level, bounds, out)
+    keep = through >= level
+    # reference: scipy.sparse CSR product Â @ X on the rows still needed at this hop
+    np.testing.assert_allclose(out[keep], (hat @ x.astype(np.float64))[keep], rtol=1e-5, atol=1e-5)
+    assert np.isnan(out[~keep]).all()

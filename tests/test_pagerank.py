@@ -5,7 +5,9 @@ import pytest
 import scipy.sparse as sp
 from conftest import random_symmetric, write_graph_store
 
-from bigprune.kernels.pagerank import row_strength
+import bigprune.memory as memory
+from bigprune.arrayfile import NpyFile, edge_chunks
+from bigprune.kernels.pagerank import accumulate_rows
 from bigprune.pagerank import pagerank_scores, power_iteration
 from bigprune.propagate import propagate
 
@@ -19,10 +21,21 @@ def _networkx(adj, weighted):
 
 
 def _csr(adj, weighted):
+    """indptr and an in-memory chunk source."""
     adj = sp.csr_matrix(adj, dtype=np.float32)
     adj.sort_indices()
-    weights = adj.data.copy() if weighted else np.zeros(0, dtype=np.float32)
-    return adj.indptr.astype(np.int64), adj.indices.astype(np.int32), weights
+    weights = adj.data.copy() if weighted else None
+    return adj.indptr.astype(np.int64), edge_chunks(adj.indices.astype(np.int32), weights, 0)
+
+
+def _streamed(adj, weighted, folder, rows):
+    """indptr and a chunk source reading the entries from .npy files, ``rows`` at a time."""
+    adj = sp.csr_matrix(adj, dtype=np.float32)
+    adj.sort_indices()
+    np.save(folder / "indices.npy", adj.indices.astype(np.int32))
+    np.save(folder / "weight.npy", adj.data)
+    weights = NpyFile(folder / "weight.npy") if weighted else None
+    return adj.indptr.astype(np.int64), edge_chunks(NpyFile(folder / "indices.npy"), weights, rows)
 
 
 def _with_isolated(rng):
@@ -42,9 +55,11 @@ GRAPHS = {
 
 
 @pytest.mark.parametrize("name", sorted(GRAPHS))
-def test_power_iteration_matches_networkx(name):
+@pytest.mark.parametrize("rows", [None, 1, 13])
+def test_power_iteration_matches_networkx(tmp_path, name, rows):
     adj, weighted = GRAPHS[name](np.random.default_rng(11))
-    scores, steps, change = power_iteration(*_csr(adj, weighted))
+    csr = _csr(adj, weighted) if rows is None else _streamed(adj, weighted, tmp_path, rows)
+    scores, steps, change = power_iteration(*csr)
     # reference: networkx.pagerank, run to a much tighter tolerance
     np.testing.assert_allclose(scores, _networkx(adj, weighted), rtol=0, atol=1e-8)
     assert change < 1e-9 and steps < 1000
@@ -61,23 +76,37 @@ def test_isolated_nodes_get_the_teleport_share_only():
 
 
 @pytest.mark.parametrize("weighted", [False, True])
-def test_row_strength_matches_scipy(weighted):
+@pytest.mark.parametrize("rows", [None, 1, 7, 10_000])
+def test_accumulate_rows_matches_scipy(tmp_path, weighted, rows):
     adj = random_symmetric(80, 0.1, np.random.default_rng(2), weighted=weighted)
-    indptr, _, weights = _csr(adj, weighted)
-    strength = np.empty(80)
-    row_strength(indptr, weights, strength)
-    # reference: scipy.sparse row sums (degrees when unweighted)
-    expected = np.asarray(sp.csr_matrix(adj, dtype=np.float32).sum(axis=1)).ravel()
-    np.testing.assert_allclose(strength, expected if weighted else np.diff(indptr), rtol=1e-6)
+    indptr, chunks = _csr(adj, weighted) if rows is None else _streamed(adj, weighted, tmp_path, rows)
+    values = np.random.default_rng(3).normal(size=80)
+    strength, gathered = np.zeros(80), np.zeros(80)
+    for first, indices, weights in chunks():
+        accumulate_rows(indptr, first, indices, weights, np.zeros(0), strength)
+        accumulate_rows(indptr, first, indices, weights, values, gathered)
+    stored = sp.csr_matrix(adj, dtype=np.float32)
+    if not weighted:
+        stored.data[:] = 1.0
+    # reference: scipy.sparse row sums (degrees when unweighted) and the product A @ v
+    np.testing.assert_allclose(strength, np.asarray(stored.sum(axis=1)).ravel(), rtol=1e-6)
+    np.testing.assert_allclose(gathered, stored.astype(np.float64) @ values, rtol=1e-6, atol=1e-9)
 
 
 @pytest.mark.parametrize("weighted", [False, True])
-def test_propagate_commits_networkx_pagerank(tmp_path, weighted):
+@pytest.mark.parametrize("budget", ["4GiB", 40_000])
+def test_propagate_commits_networkx_pagerank(tmp_path, monkeypatch, weighted, budget):
+    monkeypatch.setattr(memory, "FIXED_OVERHEAD", 0)
     rng = np.random.default_rng(4)
-    adj = random_symmetric(120, 0.05, rng, weighted=weighted)
-    store = write_graph_store(tmp_path / "store", adj, rng.normal(size=(120, 3)),
-                              np.zeros(120), np.zeros(120), weighted=weighted)
-    propagate(store, hops=1)
+    adj = random_symmetric(400, 0.05, rng, weighted=weighted)
+    store = write_graph_store(tmp_path / "store", adj, rng.normal(size=(400, 3)),
+                              np.zeros(400), np.zeros(400), weighted=weighted)
+    propagate(store, hops=1, memory_budget=budget)
+    info = store.entry("propagate")["info"]
+    # 40 kB cannot hold the CSR: PageRank then streams its entries in several chunks
+    assert info["way"] == ("memory" if budget == "4GiB" else "grid")
+    if info["way"] == "grid":
+        assert info["plan"]["edge_rows"] < info["nnz"] and not info["plan"]["pagerank_whole"]
     scores = pagerank_scores(store)
     assert scores.dtype == np.float64 and isinstance(scores, np.memmap)
     # reference: networkx.pagerank on the same (float32-rounded) weights

@@ -1,57 +1,62 @@
-"""Kernels for PageRank power iteration on a symmetric CSR adjacency."""
+"""Kernels for PageRank power iteration on a symmetric CSR adjacency, one chunk of entries at a time."""
+import numpy as np
 from numba import njit, prange
 
 
 @njit(parallel=True, cache=True)
-def row_strength(indptr, weights, strength):
-    """Each row's total edge weight (its degree when unweighted).
+def accumulate_rows(indptr, first, indices, weights, values, acc):
+    """acc[r] += sum_e w_e * values[indices[e]] over the entries e of row r held in this chunk.
 
-    indptr : int64 (n + 1,), read. weights : float32 (nnz,) or (0,) for all-ones, read.
-    strength : float64 (n,), filled.
+    The chunk is entries ``first .. first + len(indices)`` of the CSR; rows cut by the chunk's
+    ends get their part here and the rest from the neighbouring chunk. With ``values`` empty the
+    sum is of the weights alone (each row's strength, its degree when unweighted).
+
+    indptr : int64 (n + 1,), read. first : int, the chunk's first entry.
+    indices : int32/int64 (c,), read. weights : float32 (c,) or (0,) for all-ones, read.
+    values : float64 (n,) or (0,), read. acc : float64 (n,), updated; each row has one writer.
     """
+    count = indices.shape[0]
+    if count == 0:
+        return
+    last = first + count
     weighted = weights.shape[0] > 0
-    for r in prange(indptr.shape[0] - 1):
-        start, stop = indptr[r], indptr[r + 1]
-        if weighted:
-            total = 0.0
-            for e in range(start, stop):
-                total += weights[e]
-            strength[r] = total
-        else:
-            strength[r] = stop - start
+    gather = values.shape[0] > 0
+    r0 = np.searchsorted(indptr, first, side="right") - 1
+    r1 = np.searchsorted(indptr, last - 1, side="right") - 1
+    for r in prange(r0, r1 + 1):
+        lo = max(indptr[r], first) - first
+        hi = min(indptr[r + 1], last) - first
+        total = 0.0
+        for e in range(lo, hi):
+            w = weights[e] if weighted else 1.0
+            total += w * values[indices[e]] if gather else w
+        acc[r] += total
 
 
 @njit(parallel=True, cache=True)
-def pagerank_step(indptr, indices, weights, inv_strength, x, damping, share, x_new):
-    """One power-iteration step; returns the L1 change ``sum |x_new - x|``.
+def spread_share(x, inv_strength, share):
+    """share = x * inv_strength; returns the dangling mass (x summed over rows without out-weight).
 
-    x_new[j] = damping * (sum_e w_e * share[i_e] + dangling / n) + (1 - damping) / n with
-    share = x * inv_strength, where the sum runs over row j (the CSR is symmetric, so row j lists
-    j's in-neighbours) and ``dangling`` is the mass of rows without out-weight, spread uniformly.
-
-    indptr : int64 (n + 1,), read. indices : int32/int64 (nnz,), read.
-    weights : float32 (nnz,) or (0,) for all-ones, read. inv_strength : float64 (n,), read,
-    0 where a row has no out-weight. x : float64 (n,), read. share : float64 (n,), scratch.
-    x_new : float64 (n,), filled.
+    x, inv_strength : float64 (n,), read (inv_strength 0 where a row has no out-weight).
+    share : float64 (n,), filled.
     """
-    weighted = weights.shape[0] > 0
-    n = x.shape[0]
     dangling = 0.0
-    for i in prange(n):
+    for i in prange(x.shape[0]):
         share[i] = x[i] * inv_strength[i]
         if inv_strength[i] == 0.0:
             dangling += x[i]
-    teleport = (damping * dangling + (1.0 - damping)) / n
+    return dangling
+
+
+@njit(parallel=True, cache=True)
+def finish_step(x, damping, teleport, x_new):
+    """x_new = damping * x_new + teleport in place; returns the L1 change ``sum |x_new - x|``.
+
+    x : float64 (n,), read. x_new : float64 (n,), updated (it holds the gathered sums on entry).
+    """
     change = 0.0
-    for j in prange(n):
-        total = 0.0
-        if weighted:
-            for e in range(indptr[j], indptr[j + 1]):
-                total += weights[e] * share[indices[e]]
-        else:
-            for e in range(indptr[j], indptr[j + 1]):
-                total += share[indices[e]]
-        value = damping * total + teleport
+    for j in prange(x.shape[0]):
+        value = damping * x_new[j] + teleport
         x_new[j] = value
         change += abs(value - x[j])
     return change

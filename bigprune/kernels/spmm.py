@@ -1,4 +1,5 @@
 """Kernels for one smoothing hop: a normalised sparse adjacency (with self loops) times dense rows."""
+import numpy as np
 from llvmlite import ir
 from numba import njit, prange, types
 from numba.core import cgutils
@@ -30,25 +31,6 @@ def prefetch(typingctx, array, row, col):
         return context.get_dummy_value()
 
     return types.void(array, row, col), codegen
-
-
-@njit(parallel=True, cache=True)
-def weighted_degree(indptr, weights, degree):
-    """Each row's weighted degree plus one for the self loop.
-
-    indptr : int64 (n + 1,), read. weights : float32 (nnz,) or (0,) for all-ones, read.
-    degree : float64 (n,), filled.
-    """
-    weighted = weights.shape[0] > 0
-    for r in prange(indptr.shape[0] - 1):
-        start, stop = indptr[r], indptr[r + 1]
-        if weighted:
-            total = 1.0
-            for e in range(start, stop):
-                total += weights[e]
-            degree[r] = total
-        else:
-            degree[r] = 1.0 + (stop - start)
 
 
 @njit(cache=True)
@@ -83,7 +65,7 @@ def scale_rows(x, scale):
 
 
 @njit(parallel=True, fastmath=True, cache=True)
-def smooth_rows(indptr, indices, weights, left, x, bounds, out):
+def smooth_rows(indptr, indices, weights, left, x, through, level, bounds, out):
     """One hop for the rows ``bounds[0]..bounds[-1]``, one parallel task per run of ``bounds``.
 
     out[i - bounds[0]] = left[i] * (x[i] + sum_e weights[e] * x[j_e]) over the entries e of row i
@@ -93,10 +75,13 @@ def smooth_rows(indptr, indices, weights, left, x, bounds, out):
 
     indptr : int64 (n + 1,), read. indices : int32/int64 (nnz,), read.
     weights : float32 (nnz,) or (0,) for all-ones, read. left : float32 (n,), read.
-    x : float32 (n, d) C-contiguous, read. bounds : int64 (tasks + 1,) ascending, read.
+    x : float32 (n, d) C-contiguous, read. through : int8 (n,) or (0,) for every row, read:
+    rows with ``through[i] < level`` are not computed and get NaN (target-restricted hops).
+    bounds : int64 (tasks + 1,) ascending, read.
     out : float32 (bounds[-1] - bounds[0], d), filled; each task writes only its own rows.
     """
     weighted = weights.shape[0] > 0
+    restricted = through.shape[0] > 0
     d = x.shape[1]
     nnz = indices.shape[0]
     line = max(1, 64 // x.itemsize)  # elements per 64-byte cache line
@@ -104,6 +89,9 @@ def smooth_rows(indptr, indices, weights, left, x, bounds, out):
     for t in prange(bounds.shape[0] - 1):
         for i in range(bounds[t], bounds[t + 1]):
             o = out[i - base]
+            if restricted and through[i] < level:
+                o[:] = np.nan
+                continue
             xi = x[i]
             for k in range(d):
                 o[k] = xi[k]
