@@ -38,10 +38,12 @@ SLACK = 1e-4
 class Outcome:
     """What the greedy returns.
 
-    order : int64 (k,), chosen candidate rows, in the order they were chosen.
+    order : int64 (k,), chosen candidate rows, in the order they were chosen (fewer in radius
+        mode).
     dist : float64 (m,), each target's L2 distance to its nearest chosen candidate.
     assign : int64 (m,), position in ``order`` of that candidate.
-    trace : float64 (k,), the radius (max of ``dist``) after each pick (inf before coverage).
+    trace : float64 (len(order),), the radius (max of ``dist``) after each pick (NaN for
+        initial picks given with their coverage, ``covered``, but the last).
     stats : dict, JSON-ready counters (index kind, recall, share of updates skipped, ...).
     """
 
@@ -105,6 +107,23 @@ class _Targets:
             return -1, -1.0
         tied = np.flatnonzero(self.top_active == best)
         return int(self.top_index[tied[np.argmin(self.top_index[tied])]]), float(best)
+
+    def start_from(self, dist, assign):
+        """Targets start at ``dist`` / ``assign`` ((m,), caller's order), not infinity."""
+        self.dist[:] = dist[self.order]
+        self.assign[:] = assign[self.order]
+        self.top_all[:] = -1.0
+        np.maximum.at(self.top_all, self.cluster, self.dist)
+        for g in range(len(self.top_all)):
+            kern.refresh_cluster(self.offsets, self.order, self.dist, self.active, g,
+                                 self.top_active, self.top_index)
+
+    def deactivate(self, targets):
+        """Keep ``targets`` (int64 array) out of the farthest search from the start."""
+        self.active[self.position[targets]] = 0
+        for g in np.unique(self.cluster[self.position[targets]]):
+            kern.refresh_cluster(self.offsets, self.order, self.dist, self.active, g,
+                                 self.top_active, self.top_index)
 
     def set_aside(self, target):
         pos = self.position[target]
@@ -215,7 +234,7 @@ class Nearest:
 
 
 def greedy(targets, candidates, k, initial=(), pool_targets=False, exact=False, seed=0,
-           nlist=None, desc="kcenter"):
+           nlist=None, desc="kcenter", radius=None, allowed=None, covered=None):
     """Choose ``k`` candidate rows that cover the targets (see the module docstring).
 
     Parameters
@@ -227,6 +246,15 @@ def greedy(targets, candidates, k, initial=(), pool_targets=False, exact=False, 
     pool_targets : bool, farthest-first over the candidates themselves (Gonzalez).
     exact : bool, always use the flat index (IVF answers are exact too, up to float32 ties).
     seed : int, for k-means and the IVF index.
+    radius : float or None. If given, stop as soon as every target lies within ``radius`` (at
+        most ``k`` picks, no fill): the shortest greedy prefix that reaches it.
+    allowed : int sequence or None, the only candidate rows that may be picked after
+        ``initial`` (default all), e.g. one class's rows when a class quota must be met; the
+        nearest-candidate query searches only these. With ``pool_targets`` the picks stop when
+        they run out, so give ``k <= len(initial) + len(allowed)``.
+    covered : (dist float64 (m,), assign int64 (m,)) or None: the targets' coverage by the
+        ``initial`` picks, already known (e.g. from :func:`cover` or an earlier outcome);
+        the initial picks are then not measured again.
 
     Returns
     -------
@@ -235,18 +263,30 @@ def greedy(targets, candidates, k, initial=(), pool_targets=False, exact=False, 
     candidates = np.ascontiguousarray(candidates, dtype=np.float32)
     targets = candidates if pool_targets else np.ascontiguousarray(targets, dtype=np.float32)
     state = _Targets(targets, seed)
-    nearest = None if pool_targets else Nearest(candidates, targets, exact, seed, nlist)
+    rows = None if allowed is None else np.asarray(allowed, dtype=np.int64)
+    nearest = None
+    if pool_targets and rows is not None:
+        state.deactivate(np.setdiff1d(np.arange(len(candidates)), rows))
+    elif not pool_targets:
+        nearest = Nearest(candidates if rows is None else candidates[rows], targets, exact, seed,
+                          nlist)
     chosen = np.zeros(len(candidates), dtype=bool)
     order, trace = [], []
 
-    def take(c):
+    def take(c, measure=True):
         chosen[c] = True
         order.append(c)
-        state.add(candidates[c], len(order) - 1)
+        if measure:
+            state.add(candidates[c], len(order) - 1)
         trace.append(state.radius_now())
 
     for c in initial:
-        take(int(c))
+        take(int(c), measure=covered is None)
+    if covered is not None:
+        state.start_from(np.asarray(covered[0], dtype=np.float64),
+                         np.asarray(covered[1], dtype=np.int64))
+        if order:  # only the radius after the last initial pick is known
+            trace[:] = [math.nan] * (len(order) - 1) + [state.radius_now()]
     queries = filled = 0
     # One query at a time runs faster on one FAISS thread (measured: 2.5 ms against 14 ms with
     # two threads, flat 100k x 64): the OpenMP team costs more than the scan it splits.
@@ -255,7 +295,7 @@ def greedy(targets, candidates, k, initial=(), pool_targets=False, exact=False, 
     try:
         with progress(total=k, desc=desc, unit="pick") as bar:
             bar.update(len(order))
-            while len(order) < k:
+            while len(order) < k and not (radius is not None and state.radius_now() <= radius):
                 target, far = state.farthest()
                 if target < 0 or (far <= 0 and not pool_targets):
                     break
@@ -263,6 +303,7 @@ def greedy(targets, candidates, k, initial=(), pool_targets=False, exact=False, 
                     c = target
                 else:
                     c = nearest.query(state.row(target))
+                    c = c if rows is None else int(rows[c])
                     queries += 1
                 state.set_aside(target)
                 if not chosen[c]:
@@ -270,10 +311,10 @@ def greedy(targets, candidates, k, initial=(), pool_targets=False, exact=False, 
                     bar.update(1)
     finally:
         faiss.omp_set_num_threads(faiss_threads)
-    if len(order) < k:
+    if len(order) < k and radius is None and not pool_targets:
         # Every target is served: spread the rest over the candidates, farthest first.
         more = greedy(None, candidates, k, initial=order, pool_targets=True, seed=seed,
-                      desc=desc + " (fill)").order[len(order):]
+                      desc=desc + " (fill)", allowed=allowed).order[len(order):]
         filled = len(more)
         for c in more:
             take(int(c))

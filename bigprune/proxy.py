@@ -39,7 +39,7 @@ class ProxyModel:
         return self.classes[np.argmax(self.predict_proba(features, rows, chunk_rows), axis=1)]
 
 
-def fit_proxy(features, labels, rows, l2=1.0, max_iter=300, chunk_rows=65536, tol=1e-6):
+def fit_proxy(features, labels, rows, l2=1.0, max_iter=300, chunk_rows=65536, tol=1e-6, init=None):
     """Fit the proxy on ``features[rows]`` with labels ``labels[rows]``.
 
     Parameters
@@ -80,7 +80,12 @@ def fit_proxy(features, labels, rows, l2=1.0, max_iter=300, chunk_rows=65536, to
     if k == 1:
         coef, intercept, iterations = np.zeros((dim, 1)), np.zeros(1), 0
     else:
-        result = minimize(loss_grad, np.zeros(dim * k + k), jac=True, method="L-BFGS-B",
+        start = (np.zeros(dim * k + k) if init is None
+                 else np.concatenate([np.ravel(init[0]), np.ravel(init[1])]).astype(np.float64))
+        if start.shape != (dim * k + k,):
+            raise InputError(f"init: weights for {dim} features and {k} classes have "
+                             f"{dim * k + k} values, got {start.size}")
+        result = minimize(loss_grad, start, jac=True, method="L-BFGS-B",
                           options={"maxiter": max_iter, "gtol": tol})
         coef, intercept = result.x[:dim * k].reshape(dim, k), result.x[dim * k:]
         iterations = int(result.nit)

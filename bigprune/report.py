@@ -28,6 +28,12 @@ def class_counts(labels):
     return {str(int(v)): int(c) for v, c in zip(values, counts)}
 
 
+def changes(selected, included):
+    """How the selection relates to the include list: ``{kept, added, dropped}`` node counts."""
+    kept = int(np.isin(included, selected).sum())
+    return {"kept": kept, "added": int(len(selected)) - kept, "dropped": int(len(included)) - kept}
+
+
 def homophily(store, nodes, window_rows):
     """Mean label homophily of ``nodes`` (sorted int64 dense indices).
 

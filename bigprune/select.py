@@ -12,33 +12,43 @@ import numpy as np
 
 from .errors import InputError
 from .memory import FIXED_OVERHEAD, parse_size, peak_rss, require, rows_per_chunk
-from .report import CAUTION, class_counts, coverage, diagnostics
+from .report import CAUTION, changes, class_counts, coverage, diagnostics
 from .runtime import set_threads
 from .kcenter import cover
 from .schema import NO_LABEL, NO_SPLIT, SPLIT_CODES
 from .store import Store
-from .strategies import STRATEGIES, Problem
+from .strategies import NEEDS_POOL_ROWS, NEEDS_PROXY, STRATEGIES, Problem
 
 # Which nodes each ``--targets`` choice means: split codes.
 TARGETS = {"test": SPLIT_CODES["test"], "valid": SPLIT_CODES["valid"], "unlabeled": NO_SPLIT}
-# Strategies that hold the pool's feature rows (and an index or a sorted copy of them).
-NEEDS_POOL_ROWS = {"kcenter", "kcenter-pool"}
+# Float64 copies of a feature chunk the proxy holds at once (standardized rows, logits, grads).
+PROXY_ROW_COPIES = 4
 
 
-def select(store, strategy, budget, targets="test", seed=0, out=None, memory_budget="4GiB",
-           threads=None, embedding_hop=None, initial=None):
+def select(store, strategy, budget=None, targets="test", seed=0, out=None, memory_budget="4GiB",
+           threads=None, embedding_hop=None, initial=None, include=None, exclude=None,
+           min_per_class=None, radius=None):
     """Choose ``budget`` training-pool nodes with ``strategy`` and report what they cover.
 
     Parameters
     ----------
     store : Store or path, with committed graph and propagate stages.
     strategy : str, one of ``STRATEGIES``.
-    budget : float in (0, 1) (a share of the pool) or int >= 1 (a count); strings are parsed.
+    budget : float in (0, 1) (a share of the training pool, before any exclusion) or int >= 1
+        (a count); strings are parsed. Required unless ``radius`` is given.
     targets : ``"test"``, ``"valid"`` or ``"unlabeled"`` (nodes with no split).
     seed : int. out : path ending in ``.parquet`` outside the store, or None (nothing written).
     memory_budget : size such as ``"4GiB"``. threads : int or None (all available cores).
     embedding_hop : int or None; distances use ``hop_<h>`` (0 = input features), default the last.
     initial : sequence of node ids (the user's ids) of pool nodes chosen first, or None.
+    include : path of a Parquet file with a ``node_id`` column (e.g. an earlier selection): these
+        pool nodes are kept and chosen first (the greedy's starting centres). Not with ``initial``.
+    exclude : path, same format: these nodes are never chosen (ids of graph nodes outside the
+        training pool are allowed and counted).
+    min_per_class : int >= 1, or a fraction (0, 1) of the budget (rounded up): each class of the
+        pool gets at least that many picks, capped at its pool size.
+    radius : float >= 0 or None; ``kcenter`` only, instead of ``budget``: the fewest greedy picks
+        that bring every target within ``radius`` (plus any quota picks).
 
     Returns
     -------
@@ -51,6 +61,9 @@ def select(store, strategy, budget, targets="test", seed=0, out=None, memory_bud
         raise InputError(f"--strategy {strategy}: unknown; use one of {', '.join(STRATEGIES)}")
     if targets not in TARGETS:
         raise InputError(f"--targets {targets}: unknown; use one of {', '.join(TARGETS)}")
+    radius = _check_radius(radius, strategy, budget)
+    if include is not None and initial is not None:
+        raise InputError(f"--include {include}: give either an include file or initial ids, not both")
     out = _check_out(out, store)
     memory = parse_size(memory_budget)
     threads = set_threads(threads)
@@ -58,27 +71,62 @@ def select(store, strategy, budget, targets="test", seed=0, out=None, memory_bud
     label = store.load("graph", "label", mmap=False)
     hops = int(store.entry("propagate")["params"]["hops"])
     hop = hops if embedding_hop is None else _check_hop(embedding_hop, hops)
-    pool = np.flatnonzero((split == SPLIT_CODES["train"]) & (label != NO_LABEL)).astype(np.int64)
-    if len(pool) == 0:
+    whole_pool = np.flatnonzero((split == SPLIT_CODES["train"]) & (label != NO_LABEL)).astype(np.int64)
+    if len(whole_pool) == 0:
         raise InputError(f"--store {store.path}: no labelled node has split train, so the training "
                          f"pool is empty; mark training nodes in the node table's split column")
     chosen_targets = np.flatnonzero(split == TARGETS[targets]).astype(np.int64)
     if len(chosen_targets) == 0:
         others = ", ".join(t for t in TARGETS if t != targets)
         raise InputError(f"--targets {targets}: no node is in this set; choose another ({others})")
-    k = parse_budget(budget, len(pool))
-    start = _initial_nodes(store, initial, pool, k)
+    pool, k, start, quota, constraints = _constrain(
+        store, label, whole_pool, budget, radius, initial, include, exclude, min_per_class)
     embedding = (store.stage_dir("graph") / "features.npy" if hop == 0
                  else store.stage_dir("propagate") / f"hop_{hop}.npy")
     width = np.load(embedding, mmap_mode="r").shape[1]
-    need = _needed_bytes(strategy, len(pool), len(chosen_targets), k, width)
+    classes = len(np.unique(label[pool]))
+    need = _needed_bytes(strategy, len(pool), len(chosen_targets), k, width, classes)
     require(memory, need, f"select --strategy {strategy}")
-    window_rows = rows_per_chunk((memory - FIXED_OVERHEAD - need) // 4, 4 * width, at_least=1024)
-    problem = Problem(store, pool, chosen_targets, k, start, int(seed), embedding, window_rows)
-    given = budget if isinstance(budget, (int, float, str)) else str(budget)
+    spare = memory - FIXED_OVERHEAD - need
+    window_rows = rows_per_chunk(spare // 4, 4 * width, at_least=1024)
+    proxy_rows = rows_per_chunk(spare // 4, PROXY_ROW_COPIES * 8 * (width + classes), at_least=1024)
+    problem = Problem(store, pool, chosen_targets, k, start, int(seed), embedding, window_rows,
+                      label, quota, radius, proxy_rows)
+    given = budget if isinstance(budget, (int, float, str)) or budget is None else str(budget)
     extra = {"budget": given, "target_split": targets, "embedding": f"hop_{hop}", "metric": "L2",
-             "threads": threads}
+             "threads": threads, "constraints": constraints}
     return _select(problem, strategy, label, out, started, extra)
+
+
+def _constrain(store, label, whole_pool, budget, radius, initial, include, exclude, min_per_class):
+    """Apply the exclude list, the budget, the include list and the quotas, checked together.
+
+    Returns (pool, k, start, quota, constraints): the candidates left, the pick count (the
+    pool size in radius mode), the must-include nodes, ``{class: minimum}`` and the report's
+    record of what was applied.
+    """
+    constraints = {}
+    pool = whole_pool
+    if exclude is not None:
+        pool, constraints["exclude"] = _excluded(store, exclude, whole_pool)
+    budget_mode = radius is None
+    k = parse_budget(budget, len(whole_pool)) if budget_mode else len(pool)
+    if k > len(pool):
+        raise InputError(f"--budget {budget}: {k} picks, but only {len(pool)} pool nodes remain "
+                         f"after --exclude {exclude}; use at most {len(pool)}")
+    if include is not None:
+        start = _included(store, include, whole_pool, pool, exclude, k if budget_mode else None)
+        constraints["include"] = {"file": str(include), "nodes": int(len(start))}
+    else:
+        start = _initial_nodes(store, initial, pool, k)
+    quota = {}
+    if min_per_class is not None:
+        quota = _quotas(min_per_class, k if budget_mode else None, label[pool], label[start])
+        constraints["min_per_class"] = {"given": min_per_class, "counts": {
+            str(c): q for c, q in quota.items()}}
+    if not budget_mode:
+        constraints["radius"] = radius
+    return pool, k, start, quota, constraints
 
 
 def parse_budget(budget, pool):
@@ -95,6 +143,68 @@ def parse_budget(budget, pool):
         raise InputError(f"--budget {budget}: larger than the training pool ({pool} nodes); "
                          f"use at most {pool} or a fraction below 1")
     return k
+
+
+def parse_quota(value, k):
+    """Per-class minimum from a count (>= 1) or a fraction of the budget ``k`` (rounded up).
+
+    ``k`` is None in radius mode, where only a count makes sense.
+    """
+    try:
+        number = float(value) if not isinstance(value, bool) else math.nan
+    except (TypeError, ValueError):
+        number = math.nan
+    if not math.isfinite(number) or number <= 0 or (number >= 1 and number != int(number)):
+        raise InputError(f"--min-per-class {value}: use a whole count >= 1 or a fraction of the "
+                         f"budget between 0 and 1")
+    if number >= 1:
+        return int(number)
+    if k is None:
+        raise InputError(f"--min-per-class {value}: a fraction of the budget needs --budget; with "
+                         f"--radius give a whole count")
+    return max(1, math.ceil(number * k - 1e-9))
+
+
+def _quotas(value, k, pool_labels, include_labels):
+    """``{class: minimum}`` for every class of the pool, checked against the budget ``k``."""
+    per_class = parse_quota(value, k)
+    classes, sizes = np.unique(pool_labels, return_counts=True)
+    included = dict(zip(*np.unique(include_labels, return_counts=True)))
+
+    def picks(q):  # the budget the quotas and the include list take together
+        return sum(max(min(q, int(n)), int(included.get(c, 0))) for c, n in zip(classes, sizes))
+
+    if k is not None and picks(per_class) > k:
+        # quotas above the largest class all cost the same: no need to try them
+        best = max((q for q in range(min(per_class, int(sizes.max()) + 1)) if picks(q) <= k),
+                   default=0)
+        fix = f"use at most {best} or raise --budget" if best >= 1 else "raise --budget"
+        raise InputError(f"--min-per-class {value}: {len(classes)} classes need {picks(per_class)} "
+                         f"picks{' with the include list' if included else ''}, more than the "
+                         f"budget {k}; {fix}")
+    return {int(c): min(per_class, int(n)) for c, n in zip(classes, sizes)}
+
+
+def _check_radius(radius, strategy, budget):
+    if radius is None:
+        if budget is None:
+            raise InputError("--budget: required (a fraction of the training pool or a count) "
+                             "unless --radius is given with --strategy kcenter")
+        return None
+    try:
+        value = float(radius) if not isinstance(radius, bool) else math.nan
+    except (TypeError, ValueError):
+        value = math.nan
+    if not math.isfinite(value) or value < 0:
+        raise InputError(f"--radius {radius}: use a distance >= 0 in the embedding's units "
+                         f"(a report's coverage radius shows the scale)")
+    if strategy != "kcenter":
+        raise InputError(f"--radius {radius}: only --strategy kcenter has a radius mode; use "
+                         f"kcenter or give --budget instead")
+    if budget is not None:
+        raise InputError(f"--radius {radius}: give --budget or --radius, not both; the radius "
+                         f"mode picks as many nodes as it needs")
+    return value
 
 
 def _check_out(out, store):
@@ -118,17 +228,29 @@ def _check_hop(hop, hops):
     return int(hop)
 
 
+def _dense(store, wanted):
+    """Dense indices of the user's ids ``wanted`` (a pyarrow array), -1 where unknown."""
+    import pyarrow.compute as pc
+
+    ids = store.table("graph", "node_id").column("node_id").combine_chunks()
+    found = pc.index_in(wanted, value_set=ids)
+    return found.fill_null(-1).to_numpy(zero_copy_only=False).astype(np.int64)
+
+
+def _id_type(store):
+    import pyarrow.parquet as pq
+
+    return pq.read_schema(store.stage_dir("graph") / "node_id.parquet").field("node_id").type
+
+
 def _initial_nodes(store, initial, pool, k):
     """Dense indices of the user's ``initial`` ids, which must be distinct pool nodes."""
     if initial is None:
         return np.zeros(0, dtype=np.int64)
     import pyarrow as pa
-    import pyarrow.compute as pc
 
-    ids = store.table("graph", "node_id").column("node_id").combine_chunks()
-    wanted = pa.array(list(initial), type=ids.type)
-    found = pc.index_in(wanted, value_set=ids)
-    dense = found.fill_null(-1).to_numpy(zero_copy_only=False).astype(np.int64)
+    wanted = pa.array(list(initial), type=_id_type(store))
+    dense = _dense(store, wanted)
     outside = (dense < 0) | ~np.isin(dense, pool)
     if outside.any():
         raise InputError(f"--initial: node {wanted[int(np.argmax(outside))].as_py()} is not in the "
@@ -139,7 +261,70 @@ def _initial_nodes(store, initial, pool, k):
     return dense
 
 
-def _needed_bytes(strategy, pool, targets, k, width):
+def _node_file(store, path, option):
+    """The ``node_id`` column of the Parquet file ``path`` as the store's id type, and the
+    dense index of each id (-1 where the graph has no such node)."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    if not Path(path).is_file():
+        raise InputError(f"{option} {path}: no such file")
+    try:
+        schema = pq.read_schema(path)
+    except (pa.ArrowException, OSError):
+        raise InputError(f"{option} {path}: not a readable Parquet file") from None
+    if "node_id" not in schema.names:
+        raise InputError(f"{option} {path}: no node_id column; give a Parquet file with one "
+                         f"(a bigprune selection has it)")
+    ids_type = _id_type(store)
+    column = pq.read_table(path, columns=["node_id"]).column("node_id").combine_chunks()
+    try:
+        wanted = column.cast(ids_type)
+    except pa.ArrowException:
+        raise InputError(f"{option} {path}: node_id holds {column.type} values but the store's ids "
+                         f"are {ids_type}; write the ids as {ids_type}") from None
+    return wanted, _dense(store, wanted)
+
+
+def _included(store, path, whole_pool, pool, exclude, k):
+    """Dense indices, in file order, of the must-include nodes (checked against ``k``)."""
+    wanted, dense = _node_file(store, path, "--include")
+    bad = (dense < 0) | ~np.isin(dense, whole_pool)
+    if bad.any():
+        raise InputError(f"--include {path}: node {wanted[int(np.argmax(bad))].as_py()} is not in "
+                         f"the training pool; give ids of nodes with split train and a label")
+    banned = ~np.isin(dense, pool)
+    if banned.any():
+        raise InputError(f"--include {path}: node {wanted[int(np.argmax(banned))].as_py()} is also "
+                         f"in --exclude {exclude}; a node cannot be both")
+    _, first = np.unique(dense, return_index=True)
+    if len(first) != len(dense):
+        twice = int(np.setdiff1d(np.arange(len(dense)), first)[0])
+        raise InputError(f"--include {path}: node {wanted[twice].as_py()} appears twice; list each "
+                         f"node once")
+    if k is not None and len(dense) > k:
+        raise InputError(f"--include {path}: {len(dense)} nodes, more than the budget {k}; raise "
+                         f"--budget to at least {len(dense)} or shorten the file")
+    return dense
+
+
+def _excluded(store, path, whole_pool):
+    """The pool left after removing the nodes of ``path``, and what the exclusion did."""
+    wanted, dense = _node_file(store, path, "--exclude")
+    if (dense < 0).any():
+        raise InputError(f"--exclude {path}: node {wanted[int(np.argmax(dense < 0))].as_py()} is "
+                         f"not in the graph; give ids from the node table")
+    inside = np.isin(dense, whole_pool)
+    pool = np.setdiff1d(whole_pool, dense[inside])
+    if len(pool) == 0:
+        raise InputError(f"--exclude {path}: removes every training pool node; nothing is left "
+                         f"to choose")
+    removed = len(whole_pool) - len(pool)
+    return pool, {"file": str(path), "nodes": int(removed),
+                  "outside_pool": int(len(np.unique(dense[~inside])))}
+
+
+def _needed_bytes(strategy, pool, targets, k, width, classes):
     """Bytes the stage holds at its peak, for the up-front budget check."""
     rows = 4 * width
     need = 2 * targets * rows + 48 * targets + 16 * pool  # targets + sorted copy, state, masks
@@ -147,6 +332,8 @@ def _needed_bytes(strategy, pool, targets, k, width):
         need += 2 * pool * rows  # the rows, plus the index (or the sorted copy) over them
     else:
         need += k * rows
+    if strategy in NEEDS_PROXY:
+        need += 4 * 8 * pool * classes + 32 * pool  # probabilities, scores, ranking
     return need
 
 
@@ -166,9 +353,10 @@ def _select(problem, strategy, label, out, started, extra):
               "targets": int(len(problem.targets)), "seed": problem.seed, **extra}
     report.update(coverage(dist, assign, len(order)))
     report["classes"] = class_counts(label[order])
+    if "include" in extra["constraints"]:
+        report["changed"] = changes(order, problem.initial)
     report["diagnostics"] = diagnostics(problem.store, order, problem.pool, problem.window_rows)
-    if choice.outcome is not None:
-        report["greedy"] = choice.outcome.stats
+    report.update(choice.info or {})
     report["caution"] = CAUTION
     report["seconds"] = round(time.perf_counter() - started, 3)
     report["peak_rss"] = peak_rss()

@@ -19,8 +19,9 @@ def one_thread():
     set_threads(None)
 
 
-def plain_greedy(targets, candidates, k, initial=()):
-    """Unpruned k-supplier greedy with the same set-aside rule, all in numpy (float64)."""
+def plain_greedy(targets, candidates, k, initial=(), allowed=None):
+    """Unpruned k-supplier greedy with the same set-aside rule, all in numpy (float64); the
+    nearest candidate is searched among ``allowed`` rows only when given."""
     t64, c64 = targets.astype(np.float64), candidates.astype(np.float64)
     dist = np.full(len(t64), np.inf)
     active = np.ones(len(t64), dtype=bool)
@@ -32,7 +33,10 @@ def plain_greedy(targets, candidates, k, initial=()):
         t = int(np.argmax(key))
         if key[t] <= 0:
             break
-        c = int(np.argmin(((c64 - t64[t]) ** 2).sum(1)))
+        gaps = ((c64 - t64[t]) ** 2).sum(1)
+        if allowed is not None:
+            gaps[~np.isin(np.arange(len(c64)), allowed)] = np.inf
+        c = int(np.argmin(gaps))
         active[t] = False
         if c in chosen:
             continue
@@ -162,3 +166,54 @@ def test_certified_ivf_search_gives_the_exact_greedy(monkeypatch):
     np.testing.assert_array_equal(out.order, picks)
     d = cdist(targets.astype(np.float64), candidates[out.order].astype(np.float64))
     np.testing.assert_allclose(out.dist, d.min(1), rtol=1e-12)
+
+
+@pytest.mark.parametrize("initial", [[], [7, 2]])
+def test_radius_mode_stops_at_the_shortest_prefix(initial):
+    # reference: plain_greedy (numpy) run to the end; cdist radius of each of its prefixes
+    rng = np.random.default_rng(8)
+    centres = rng.normal(scale=4.0, size=(6, 4))
+    targets, candidates = blobs(rng, 500, 4, centres), blobs(rng, 300, 4, centres)
+    picks, _ = plain_greedy(targets, candidates, 300, initial)
+    d = cdist(targets.astype(np.float64), candidates[picks].astype(np.float64))
+    radii = np.minimum.accumulate(d, axis=1).max(0)  # radius after each prefix
+    goal = 0.5 * (radii[39] + radii[40])
+    out = greedy(targets, candidates, len(candidates), initial=initial, exact=True, radius=goal)
+    shortest = int(np.argmax(radii <= goal)) + 1
+    np.testing.assert_array_equal(out.order, picks[:shortest])
+    assert out.dist.max() <= goal < radii[shortest - 2]
+
+
+def test_allowed_candidates_restrict_the_picks():
+    # reference: plain_greedy with the nearest candidate searched among the allowed rows only,
+    # and Gonzalez's traversal (plain_farthest_first) over the allowed points plus the start
+    rng = np.random.default_rng(9)
+    centres = rng.normal(scale=4.0, size=(5, 3))
+    targets, candidates = blobs(rng, 300, 3, centres), blobs(rng, 200, 3, centres)
+    allowed = np.flatnonzero(rng.random(200) < 0.3)
+    start = [int(i) for i in np.setdiff1d(np.arange(200), allowed)[:6]]
+    out = greedy(targets, candidates, 16, initial=start, exact=True, allowed=allowed)
+    picks, dist = plain_greedy(targets, candidates, 16, start, allowed)
+    np.testing.assert_array_equal(out.order, picks)
+    np.testing.assert_allclose(out.dist, dist, rtol=1e-12)
+    assert np.isin(out.order[6:], allowed).all()
+    out = greedy(None, candidates, 16, initial=start, pool_targets=True, allowed=allowed)
+    rows = np.concatenate([start, allowed])
+    picks, _ = plain_farthest_first(candidates[rows], 16, list(range(6)))
+    np.testing.assert_array_equal(out.order, rows[picks])
+
+
+def test_known_coverage_of_the_initial_picks_gives_the_same_greedy():
+    # reference: plain_greedy (numpy) from the same initial picks; cdist for dist and assign
+    rng = np.random.default_rng(10)
+    centres = rng.normal(scale=4.0, size=(5, 4))
+    targets, candidates = blobs(rng, 400, 4, centres), blobs(rng, 250, 4, centres)
+    start = [11, 40, 3]
+    out = greedy(targets, candidates, 20, initial=start, exact=True,
+                 covered=cover(targets, candidates[start]))
+    picks, dist = plain_greedy(targets, candidates, 20, start)
+    np.testing.assert_array_equal(out.order, picks)
+    d = cdist(targets.astype(np.float64), candidates[picks].astype(np.float64))
+    np.testing.assert_allclose(out.dist, d.min(1), rtol=1e-12)
+    np.testing.assert_array_equal(out.assign, d.argmin(1))
+    assert np.isnan(out.trace[:2]).all() and out.trace[-1] == pytest.approx(d.min(1).max())

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from scipy.spatial.distance import cdist
 
-from bigprune.report import class_counts, coverage, diagnostics, homophily
+from bigprune.report import changes, class_counts, coverage, diagnostics, homophily
 from bigprune.runtime import set_threads
 from bigprune.schema import NO_LABEL
 from bigprune.select import select
@@ -69,11 +69,13 @@ def test_diagnostics_match_networkx(karate):
             networkx_homophily(graph, club, split, nodes), rel=1e-12)
 
 
-@pytest.mark.parametrize("strategy", ["random", "kcenter", "kcenter-pool", "degree"])
-def test_report_coverage_matches_cdist(small_store, strategy):
+@pytest.mark.parametrize("strategy,quota", [("random", None), ("kcenter", None), ("kcenter", 3),
+                                            ("kcenter-pool", None), ("degree", None),
+                                            ("stratified", None), ("age", 3)])
+def test_report_coverage_matches_cdist(small_store, strategy, quota):
     # reference: scipy.spatial.distance.cdist from every target to every selected node
     store = add_propagate(small_store)
-    result = select(store, strategy, 14, seed=2, threads=1)
+    result = select(store, strategy, 14, seed=2, threads=1, min_per_class=quota)
     split = store.load("graph", "split")
     rows = store.load("propagate", "hop_1").astype(np.float64)
     d = cdist(rows[split == 3], rows[result["indices"]])
@@ -100,3 +102,14 @@ def test_coverage_and_classes_on_known_values():
     assert out["coverage"]["p50"] == 2.0 and out["coverage"]["p90"] == pytest.approx(3.6)
     assert out["load"] == {"max": 3, "mean": pytest.approx(5 / 3)}
     assert class_counts(np.array([2, 0, 2, 11])) == {"0": 1, "2": 2, "11": 1}
+
+
+def test_changes_match_python_sets():
+    # reference: Python set intersection and differences
+    rng = np.random.default_rng(1)
+    for _ in range(50):
+        included = rng.choice(40, size=rng.integers(0, 10), replace=False)
+        selected = rng.choice(40, size=rng.integers(1, 20), replace=False)
+        a, b = set(selected.tolist()), set(included.tolist())
+        assert changes(selected, included) == {"kept": len(a & b), "added": len(a - b),
+                                               "dropped": len(b - a)}
