@@ -79,6 +79,7 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
     if len(chosen_targets) == 0:
         others = ", ".join(t for t in TARGETS if t != targets)
         raise InputError(f"--targets {targets}: no node is in this set; choose another ({others})")
+    _check_computed(store, hop, np.concatenate([whole_pool, chosen_targets]), targets)
     pool, k, start, quota, constraints = _constrain(
         store, label, whole_pool, budget, radius, initial, include, exclude, min_per_class)
     embedding = (store.stage_dir("graph") / "features.npy" if hop == 0
@@ -219,6 +220,16 @@ def _check_out(out, store):
     if not resolved.parent.is_dir():
         raise InputError(f"--out {out}: directory {path.parent} does not exist")
     return resolved
+
+
+def _check_computed(store, hop, rows, targets):
+    """Refuse rows a restricted propagation (``--restrict``) did not compute at ``hop``."""
+    path = store.stage_dir("propagate") / "computed_through.npy"
+    if hop == 0 or not path.exists():
+        return
+    if np.any(np.load(path)[rows] < hop):
+        raise InputError(f"--targets {targets}: propagate computed hop {hop} only for the training pool "
+                         "and the valid and test splits (--restrict); rerun bigprune propagate --no-restrict")
 
 
 def _check_hop(hop, hops):

@@ -531,3 +531,23 @@ def test_command_line_constraints_and_radius(skewed, tmp_path, capsys):
     assert main(["select", "--store", str(skewed.path), "--strategy", "kcenter", "--radius",
                  "1e-9", "--out", str(out), "--quiet", "--threads", "1"]) == 2
     assert "--radius 1e-09: cannot be reached even with the whole pool" in capsys.readouterr().err
+
+
+def test_restricted_propagation_refuses_uncomputed_targets(tmp_path, capsys):
+    """propagate --restrict computes the last hops only for pool, valid and test rows: selecting
+    for unsplit targets must refuse instead of reading the rows it skipped."""
+    from bigprune.cli import main
+    from bigprune.propagate import propagate
+    from conftest import random_symmetric
+
+    rng = np.random.default_rng(5)
+    n = 200
+    split = np.zeros(n, dtype=np.int8)
+    split[:60], split[60:80] = 1, 3
+    label = np.where(split == 1, rng.integers(0, 3, n), NO_LABEL)
+    store = write_graph_store(tmp_path / "s", random_symmetric(n, 0.01, rng), rng.normal(size=(n, 4)), split, label)
+    propagate(store, hops=2, restrict=True)
+    args = ["select", "--store", str(tmp_path / "s"), "--strategy", "random", "--budget", "5", "--quiet"]
+    assert main(args + ["--out", str(tmp_path / "a.parquet")]) == 0
+    assert main(args + ["--targets", "unlabeled", "--out", str(tmp_path / "b.parquet")]) == 2
+    assert "rerun bigprune propagate --no-restrict" in capsys.readouterr().err
