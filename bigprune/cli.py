@@ -33,12 +33,21 @@ exit status: 0 done, 2 bad input or job file, 3 memory budget too small or disk 
   bigprune status --store store/""",
     "check": """examples:
   bigprune check job.toml""",
+    "study": """examples:
+  bigprune study --store store/ --out study/ --strategies kcenter,random
+  bigprune study --store store/ --out study/ --budgets 0.01,0.05,0.2,1 --repeats 5 \\
+                 --answers answers.parquet --tolerance 0.005
+
+A rerun with the same options skips the cells already in study/cells/.""",
     "train": """examples:
   bigprune train --store store/                                 # the whole pool
   bigprune train --store store/ --nodes-from picks.parquet --answers answers.parquet""",
     "select": """examples:
   bigprune select --store store/ --strategy kcenter --budget 0.05 --out picks.parquet
-  bigprune select --store store/ --strategy random --budget 5000 --seed 1 --out random.parquet""",
+  bigprune select --store store/ --strategy random --budget 5000 --seed 1 --out random.parquet
+  bigprune select --store store/ --strategy kcenter --budget 0.05 --include yesterday.parquet \\
+                  --exclude flagged.parquet --min-per-class 20 --out today.parquet
+  bigprune select --store store/ --strategy kcenter --radius 0.8 --out within.parquet""",
 }
 
 
@@ -94,9 +103,21 @@ def _parser():
                        help="pick a training subset and report what it covers")
     p.add_argument("--store", required=True, metavar="DIR")
     p.add_argument("--strategy", required=True, metavar="NAME",
-                   help="kcenter, kcenter-pool, random, degree or pagerank")
-    p.add_argument("--budget", required=True, metavar="B",
-                   help="a fraction of the training pool (0 < B < 1) or a count (integer >= 1)")
+                   help="kcenter, kcenter-pool, random, stratified, degree, pagerank, entropy, "
+                        "el2n or age")
+    p.add_argument("--budget", default=None, metavar="B",
+                   help="a fraction of the training pool (0 < B < 1) or a count (integer >= 1); "
+                        "required unless --radius")
+    p.add_argument("--radius", default=None, metavar="R",
+                   help="kcenter only, instead of --budget: the fewest nodes that bring every "
+                        "target within distance R")
+    p.add_argument("--min-per-class", default=None, metavar="N",
+                   help="each class gets at least N picks (capped at its pool size); N < 1 is "
+                        "a fraction of the budget")
+    p.add_argument("--include", default=None, metavar="FILE.parquet",
+                   help="node_id column of pool nodes that must stay (e.g. the last selection)")
+    p.add_argument("--exclude", default=None, metavar="FILE.parquet",
+                   help="node_id column of nodes never to choose")
     p.add_argument("--targets", default="test", metavar="SPLIT",
                    help="nodes to cover: test (default), valid or unlabeled")
     p.add_argument("--seed", type=int, default=0, metavar="S")
@@ -111,6 +132,20 @@ def _parser():
                    help="node_id, label of target nodes to score on as well as the valid split")
     p.add_argument("--l2", type=float, default=1.0, help="L2 penalty (scikit-learn's 1/C; default 1)")
     p.add_argument("--hop", type=int, default=None, metavar="K", help="features after K hops (default: last)")
+
+    p = sub.add_parser("study", parents=[common], formatter_class=fmt, epilog=EXAMPLES["study"],
+                       help="train the proxy on each rule's subsets at several budgets; recommend one")
+    p.add_argument("--store", required=True, metavar="DIR")
+    p.add_argument("--out", required=True, metavar="DIR", help="folder for the table, fits, plots and report")
+    p.add_argument("--budgets", default="0.01,0.02,0.05,0.1,0.2,0.5,1", metavar="B,B,...",
+                   help="fractions of the pool in (0, 1] or counts; 1 = the full pool (default %(default)s)")
+    p.add_argument("--strategies", default=None, metavar="NAME,...", help="rules to compare (default: all)")
+    p.add_argument("--repeats", type=int, default=3, metavar="R", help="seeds 0 .. R-1 (default 3)")
+    p.add_argument("--answers", default=None, metavar="FILE.parquet",
+                   help="held-out labels (node_id, label) to score on (default: the valid split)")
+    p.add_argument("--tolerance", type=float, default=0.01, metavar="T",
+                   help="accuracy below the full pool that still counts as enough (default 0.01)")
+    p.add_argument("--targets", default="test", metavar="SPLIT", help="nodes the rules cover (default test)")
 
     p = sub.add_parser("run", parents=[common], formatter_class=fmt, epilog=EXAMPLES["run"],
                        help="run a job file: ingest, propagate, select, skipping what is current")
@@ -157,10 +192,18 @@ def _run(args):
         from .train import train
 
         return train(args.store, nodes_from=args.nodes_from, answers=args.answers, l2=args.l2, hop=args.hop, **opts)
+    if args.command == "study":
+        from .study import study
+
+        summary = study(args.store, args.out, budgets=args.budgets, strategies=args.strategies,
+                        repeats=args.repeats, answers=args.answers, tolerance=args.tolerance,
+                        targets=args.targets, **opts)
+        return {k: summary[k] for k in ("recommendation", "cells", "outputs", "seconds")}
     from .select import select
 
     report = select(args.store, args.strategy, args.budget, targets=args.targets, seed=args.seed,
-                    out=args.out, **opts)
+                    out=args.out, include=args.include, exclude=args.exclude,
+                    min_per_class=args.min_per_class, radius=args.radius, **opts)
     return {k: v for k, v in report.items() if not k.startswith("_")}
 
 

@@ -21,6 +21,10 @@ Example::
     strategy = "kcenter"
     budget = 0.02
     out = "selections/kcenter.parquet"
+
+    [study]                      # optional: see bigprune.study
+    out = "study"
+    strategies = ["kcenter", "random"]
 """
 import tomllib
 from pathlib import Path
@@ -36,8 +40,12 @@ INGEST = {"edges": ("path", True, None), "nodes": ("path", True, None), "feature
 PROPAGATE = {"hops": ("int", False, 2), "norm": ("str", False, "sym")}
 SELECT = {"strategy": ("str", True, None), "budget": ("number", True, None), "targets": ("str", False, "test"),
           "seed": ("int", False, 0), "out": ("path", True, None)}
+STUDY = {"out": ("path", True, None), "budgets": ("numbers", False, [0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1.0]),
+         "strategies": ("strs", False, None), "repeats": ("int", False, 3), "answers": ("path", False, None),
+         "tolerance": ("number", False, 0.01), "targets": ("str", False, "test")}
 TABLES = {"ingest": INGEST, "propagate": PROPAGATE}
 LISTS = {"select": SELECT}
+OPTIONAL = {"study": STUDY}  # tables that may be absent: job[name] is None then
 
 _CHECKS = {
     "int": lambda v: isinstance(v, int) and not isinstance(v, bool),
@@ -46,9 +54,12 @@ _CHECKS = {
     "str": lambda v: isinstance(v, str),
     "path": lambda v: isinstance(v, str) and v != "",
     "size": lambda v: isinstance(v, (str, int)) and not isinstance(v, bool),
+    "numbers": lambda v: isinstance(v, list) and v != [] and all(_CHECKS["number"](x) for x in v),
+    "strs": lambda v: isinstance(v, list) and v != [] and all(isinstance(x, str) for x in v),
 }
 _WANTED = {"bool": "true or false", "int": "an integer", "number": "a number", "str": "a string", "path": "a path string",
-           "size": "a size such as \"4GiB\""}
+           "size": "a size such as \"4GiB\"",
+           "numbers": "a list of numbers", "strs": "a list of strings"}
 
 
 def load_job(path):
@@ -63,11 +74,11 @@ def load_job(path):
     except tomllib.TOMLDecodeError as exc:
         raise InputError(f"{path}: not valid TOML ({exc})") from None
     base = path.resolve().parent
-    known = set(TOP) | set(TABLES) | set(LISTS)
+    known = set(TOP) | set(TABLES) | set(LISTS) | set(OPTIONAL)
     unknown = sorted(set(raw) - known)
     if unknown:
         raise InputError(f"{path}: unknown key {unknown[0]!r} (known: {', '.join(sorted(known))})")
-    job = _section(path, "top level", raw, TOP, base, skip=set(TABLES) | set(LISTS))
+    job = _section(path, "top level", raw, TOP, base, skip=set(TABLES) | set(LISTS) | set(OPTIONAL))
     if "ingest" not in raw:
         raise InputError(f"{path}: missing table [ingest]")
     for name, spec in TABLES.items():
@@ -80,6 +91,11 @@ def load_job(path):
         if not isinstance(entries, list) or not all(isinstance(e, dict) for e in entries):
             raise InputError(f"{path}: {name!r} must be an array of tables [[{name}]]")
         job[name] = [_section(path, f"[[{name}]] #{i + 1}", e, spec, base) for i, e in enumerate(entries)]
+    for name, spec in OPTIONAL.items():
+        value = raw.get(name)
+        if value is not None and not isinstance(value, dict):
+            raise InputError(f"{path}: {name!r} must be a table [{name}]")
+        job[name] = None if value is None else _section(path, f"[{name}]", value, spec, base)
     outs = [entry["out"] for entry in job["select"]]
     if len(set(outs)) != len(outs):
         raise InputError(f"{path}: two [[select]] tables write the same out file")

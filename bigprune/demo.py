@@ -16,6 +16,10 @@ from .scenario import generate
 DEMO_NODES = 100_000
 DEMO_BUDGET = 0.02
 DEMO_STRATEGIES = ("kcenter", "kcenter-pool", "random", "degree", "pagerank")
+# The small study the demo runs: how many training nodes each rule needs to come within one
+# accuracy point of the full pool, scored on this week's answers.
+DEMO_STUDY = {"strategies": ("kcenter", "random"), "budgets": (0.01, 0.02, 0.05, 0.1, 0.2, 1),
+              "repeats": 3, "tolerance": 0.01}
 STAMP = "demo-params.json"
 
 
@@ -55,7 +59,11 @@ def demo(workdir, nodes=None, seed=0, memory_budget=DEFAULT_BUDGET, threads=None
          "(distances in the 2-hop smoothed embedding):")
     echo(_table(reports))
     echo("")
+    summary = json.loads((root / "study" / "study.json").read_text())
+    echo("")
+    echo(_study_lines(summary))
     echo(f"selections and reports: {root / 'selections'}")
+    echo(f"study report: {root / 'study' / 'report.html'}")
     echo(f"answers for this week's listings (selection never reads them): {data / 'answers.parquet'}")
     echo(f"rerun the same job: bigprune run {job}")
     ran = sum(step["run"] for step in steps)
@@ -75,7 +83,27 @@ def _job_text(memory_budget, threads, seed):
     for strategy in DEMO_STRATEGIES:
         lines += ["", "[[select]]", f'strategy = "{strategy}"', f"budget = {DEMO_BUDGET}", f"seed = {seed}",
                   f'out = "selections/{strategy}.parquet"']
+    quoted = ", ".join(f'"{s}"' for s in DEMO_STUDY["strategies"])
+    lines += ["", "[study]", 'out = "study"', f"strategies = [{quoted}]",
+              f"budgets = [{', '.join(f'{b:g}' for b in DEMO_STUDY['budgets'])}]",
+              f"repeats = {DEMO_STUDY['repeats']}", f"tolerance = {DEMO_STUDY['tolerance']}",
+              'answers = "data/answers.parquet"']
     return "\n".join(lines) + "\n"
+
+
+def _study_lines(summary):
+    rec = summary["recommendation"]
+    lines = [f"Study: the proxy trained on each rule's subsets, scored on this week's answers "
+             f"(full pool {rec['full_accuracy']:.3f}; enough = within {rec['tolerance']:g}):",
+             f"{'rule':<14}{'enough at':>10}{'nodes':>9}{'accuracy':>10}"]
+    for rule, pick in rec["rules"].items():
+        if pick is None:
+            lines.append(f"{rule:<14}{'none':>10}")
+        else:
+            lines.append(f"{rule:<14}{pick['budget']:>10g}{pick['training_nodes']:>9,}{pick['accuracy']:>10.3f}")
+    if rec["best"]:
+        lines.append(f"fewest training nodes: {rec['best']}")
+    return "\n".join(lines)
 
 
 def _table(reports):

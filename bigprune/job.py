@@ -1,4 +1,4 @@
-"""The nightly job: ingest -> propagate -> select from one job file, skipping what is current.
+"""The nightly job: ingest -> propagate -> select (-> study) from one job file, skipping what is current.
 
 A stage runs when the store lacks it or when its inputs (fingerprints) or parameters changed;
 whatever it feeds runs again after it. Each stage commits atomically, so a job killed at any
@@ -68,7 +68,32 @@ def plan_job(job):
             why = None
         steps.append({"stage": f"select {entry['strategy']} -> {Path(entry['out']).name}", "run": why is not None,
                       "why": why or "output current", "entry": entry, "params": params})
+    if job.get("study"):
+        steps.append(_plan_study(job["study"], upstream, outputs))
     return steps
+
+
+def _plan_study(entry, upstream, outputs):
+    """The study step: current when its summary was written for the same parameters, answers
+    and propagated features (the study itself also skips its finished cells)."""
+    from .strategies import STRATEGIES
+
+    params = {k: v for k, v in entry.items() if k != "answers"}
+    params["strategies"] = entry["strategies"] or list(STRATEGIES)
+    if entry["answers"] and Path(entry["answers"]).is_file():
+        params["answers"] = fingerprints([entry["answers"]])
+    summary = Path(entry["out"]) / "study.json"
+    stamp = key(params, upstream) if upstream else None
+    if stamp is None:
+        why = "propagated features will change"
+    elif not summary.exists():
+        why = "output missing"
+    elif outputs.get(str(summary.resolve()), {}).get("key") != stamp:
+        why = "parameters, answers or features changed since it was written"
+    else:
+        why = None
+    return {"stage": f"study -> {Path(entry['out']).name}", "run": why is not None,
+            "why": why or "output current", "entry": entry, "params": params}
 
 
 def run_job(path, dry_run=False, echo=print):
@@ -102,6 +127,8 @@ def run_job(path, dry_run=False, echo=print):
                                     drop_unknown=ing["drop_unknown"], **opts)
                 elif step["stage"] == "propagate":
                     result = propagate(store, **job["propagate"], **opts)
+                elif step["stage"].startswith("study"):
+                    result = _run_study(store, step, opts)
                 else:
                     entry = step["entry"]
                     Path(entry["out"]).parent.mkdir(parents=True, exist_ok=True)
@@ -117,8 +144,21 @@ def run_job(path, dry_run=False, echo=print):
     return steps
 
 
+def _run_study(store, step, opts):
+    from .study import study
+
+    entry = step["entry"]
+    result = study(store, entry["out"], budgets=entry["budgets"], strategies=entry["strategies"],
+                   repeats=entry["repeats"], answers=entry["answers"], tolerance=entry["tolerance"],
+                   targets=entry["targets"], **opts)
+    # keyed with the features now committed, which plan_job compares against on the next run
+    store.record_output(Path(entry["out"]) / "study.json",
+                        key(step["params"], store.entry("propagate")["dir"]))
+    return {"cells_run": result["cells"]["run"], "best": result["recommendation"]["best"]}
+
+
 def _rows(result):
-    keys = ("nodes", "undirected_edges", "selected", "targets", "hops")
+    keys = ("nodes", "undirected_edges", "selected", "targets", "hops", "cells_run", "best")
     return {k: result[k] for k in keys if isinstance(result, dict) and k in result}
 
 
@@ -166,6 +206,11 @@ def check_job(path, echo=print):
     for entry in job["select"]:
         if entry["strategy"] not in STRATEGIES:
             raise InputError(f"{path}: [[select]] strategy {entry['strategy']!r} is unknown "
+                             f"(choose from {', '.join(STRATEGIES)})")
+    study = job.get("study")
+    for name in (study or {}).get("strategies") or ():
+        if name not in STRATEGIES:
+            raise InputError(f"{path}: [study] strategy {name!r} is unknown "
                              f"(choose from {', '.join(STRATEGIES)})")
     echo(f"ok: {table.rows:,} nodes, {edges.rows:,} edge rows in {len(edges.files)} file(s), "
          f"{len(job['select'])} selection(s)")

@@ -36,4 +36,12 @@ def test_rerun_skips_everything(demo_run, capsys):
     capsys.readouterr()
     assert main(["run", str(demo_run / "job.toml"), "--quiet"]) == 0
     lines = capsys.readouterr().out.splitlines()
-    assert len(lines) == 7 and all(line.startswith("skip") for line in lines)
+    assert len(lines) == 8 and all(line.startswith("skip") for line in lines)  # 7 stages + study
+
+
+def test_demo_runs_a_study(demo_run):
+    summary = json.loads((demo_run / "study" / "study.json").read_text())
+    assert set(summary["recommendation"]["rules"]) == {"kcenter", "random"}
+    assert summary["settings"]["evaluation"]["nodes"] == 300  # this week's answers
+    assert (demo_run / "study" / "report.html").exists()
+

@@ -1,0 +1,283 @@
+"""The study's outputs: table (Parquet, CSV), fits, plots (PNG) and the report (Markdown, HTML).
+
+The report is built once as a list of blocks and rendered twice, so the Markdown and the
+self-contained HTML (plots inlined as base64 PNG) always say the same. Plots need matplotlib
+(the ``plot`` extra); without it they are skipped and the report says so.
+"""
+import base64
+import html
+import io
+import json
+import math
+import os
+from pathlib import Path
+
+import numpy as np
+
+CAUTION = ("A subset that matches the full pool's overall accuracy can still do worse on the "
+           "classes and sub-groups it holds few examples of: a small department or a quiet "
+           "neighbourhood may lose many points while the average moves by less than the "
+           "tolerance. Read the per-class table below, and check the groups that matter to you, "
+           "before training the production model on a pruned set.")
+CURVES, PER_CLASS = "error_curves.png", "per_class.png"
+
+
+def write_outputs(out, rows, summary):
+    """Write every output of the study under ``out``; return their paths by name."""
+    out = Path(out)
+    classes = sorted({int(c) for r in rows for c in r["per_class"]})
+    table = _columns(rows, classes)
+    paths = {"table": out / "table.parquet", "csv": out / "table.csv", "fits": out / "fits.json",
+             "summary": out / "study.json", "markdown": out / "report.md", "html": out / "report.html"}
+    _atomic(paths["table"], lambda p: _parquet(p, table))
+    _atomic(paths["csv"], lambda p: _csv(p, table))
+    _atomic(paths["fits"], lambda p: p.write_text(json.dumps(summary["fits"], indent=2)))
+    _atomic(paths["summary"], lambda p: p.write_text(json.dumps(summary, indent=2, default=str)))
+    images = _plots(rows, summary, classes)
+    for name, png in images.items():
+        paths[name.split(".")[0]] = out / name
+        _atomic(out / name, lambda p, png=png: p.write_bytes(png))
+    blocks = report_blocks(rows, summary, classes, images)
+    _atomic(paths["markdown"], lambda p: p.write_text(markdown(blocks)))
+    _atomic(paths["html"], lambda p: p.write_text(to_html(blocks)))
+    return {name: str(path) for name, path in paths.items()}
+
+
+# ---- table -------------------------------------------------------------------------------------
+def _columns(rows, classes):
+    names = ["rule", "budget", "training_nodes", "repeat", "accuracy", "error", "macro_f1"]
+    table = {name: [r[name] for r in rows] for name in names}
+    for c in classes:
+        table[f"acc_class_{c}"] = [r["per_class"].get(str(c), math.nan) for r in rows]
+    for name in ("seconds", "coverage_radius", "mean_degree"):
+        table[name] = [r[name] for r in rows]
+    return table
+
+
+def _parquet(path, table):
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    pq.write_table(pa.table(table), path)
+
+
+def _csv(path, table):
+    import pyarrow as pa
+    import pyarrow.csv as pc
+
+    pc.write_csv(pa.table(table), path)
+
+
+def _atomic(path, write):
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    try:
+        write(tmp)
+        os.replace(tmp, path)
+    finally:
+        tmp.unlink(missing_ok=True)
+
+
+# ---- summaries the report and plots share -----------------------------------------------------
+def curve(rows, rule):
+    """(training nodes, mean error) of ``rule`` over repeats, sorted by training nodes."""
+    sizes = sorted({r["training_nodes"] for r in rows if r["rule"] == rule})
+    return [(n, float(np.mean([r["error"] for r in rows if r["rule"] == rule and r["training_nodes"] == n])))
+            for n in sizes]
+
+
+def per_class_at(rows, rule, nodes, classes):
+    """Mean per-class accuracy of ``rule`` at ``nodes`` training nodes, NaN where a class is absent."""
+    mine = [r["per_class"] for r in rows if r["rule"] == rule and r["training_nodes"] == nodes]
+    return [float(np.mean([m.get(str(c), math.nan) for m in mine])) for c in classes]
+
+
+# ---- plots -------------------------------------------------------------------------------------
+def _plots(rows, summary, classes):
+    """PNG bytes by file name; empty when matplotlib is missing."""
+    try:
+        from matplotlib.backends.backend_agg import FigureCanvasAgg
+        from matplotlib.figure import Figure
+    except ImportError:
+        return {}
+    rec = summary["recommendation"]
+    colours = {rule: f"C{i % 10}" for i, rule in enumerate(summary["fits"])}
+    fig = Figure(figsize=(7, 4.8))
+    FigureCanvasAgg(fig)
+    ax = fig.add_subplot()
+    for rule, fit in summary["fits"].items():
+        mine = [r for r in rows if r["rule"] == rule and r["error"] > 0]
+        ax.scatter([r["training_nodes"] for r in mine], [r["error"] for r in mine], s=10,
+                   alpha=0.35, color=colours[rule])
+        n, err = zip(*curve(rows, rule))
+        ax.plot(n, err, "o-", color=colours[rule], lw=1.2, ms=4,
+                label=f"{rule} (alpha {fit['alpha']:.2f})" if math.isfinite(fit["alpha"]) else rule)
+        if math.isfinite(fit["alpha"]):
+            grid = np.geomspace(min(n), max(n), 50)
+            ax.plot(grid, fit["a"] * grid ** -fit["alpha"], "--", color=colours[rule], lw=0.9)
+    ax.axhline(1 - rec["full_accuracy"] + rec["tolerance"], color="grey", ls=":", lw=1,
+               label="full pool error + tolerance")
+    ax.set_xscale("log")
+    ax.set_yscale("log")
+    ax.set_xlabel("training nodes")
+    ax.set_ylabel("proxy error on held-out nodes")
+    ax.set_title("Error against training nodes (dashed: power-law fit)")
+    ax.legend(fontsize=8)
+    images = {CURVES: _png(fig)}
+
+    shown = [(f"full pool ({rec['pool']:,})", per_class_at(rows, next(iter(summary["fits"])), rec["pool"], classes))]
+    for rule, pick in rec["rules"].items():
+        if pick is not None:
+            shown.append((f"{rule} ({pick['training_nodes']:,})",
+                          per_class_at(rows, rule, pick["training_nodes"], classes)))
+    fig = Figure(figsize=(max(7, 0.18 * len(classes) * len(shown) + 2), 4.2))
+    FigureCanvasAgg(fig)
+    ax = fig.add_subplot()
+    width = 0.8 / len(shown)
+    for i, (name, values) in enumerate(shown):
+        ax.bar(np.arange(len(classes)) + (i - (len(shown) - 1) / 2) * width, values, width, label=name)
+    ax.set_xticks(np.arange(len(classes)), [str(c) for c in classes])
+    ax.set_xlabel("class")
+    ax.set_ylabel("accuracy (recall)")
+    ax.set_ylim(0, 1)
+    ax.set_title("Per-class accuracy at each rule's recommended budget")
+    ax.legend(fontsize=8, loc="lower right")
+    images[PER_CLASS] = _png(fig)
+    return images
+
+
+def _png(fig):
+    buffer = io.BytesIO()
+    fig.subplots_adjust(left=0.1, right=0.97, bottom=0.12, top=0.92)  # tight_layout costs ~1 s
+    fig.savefig(buffer, format="png", dpi=110)
+    return buffer.getvalue()
+
+
+# ---- the report as blocks --------------------------------------------------------------------
+def report_blocks(rows, summary, classes, images):
+    """``[(kind, ...)]`` with kinds h1, h2, p, table (header, rows), img (name, png)."""
+    rec, fits, settings = summary["recommendation"], summary["fits"], summary["settings"]
+    ev = settings["evaluation"]
+    blocks = [("h1", "bigprune study: how many training nodes are enough"),
+              ("p", f"Proxy: L2 softmax regression (l2 = {settings['l2']:g}) on {settings['embedding']}. "
+                    f"Training pool: {settings['pool']:,} nodes. Rules cover the {settings['targets']} "
+                    f"nodes. Scored on {ev['nodes']:,} held-out nodes ({ev['source']}). "
+                    f"Repeats: {settings['repeats']} (seed = repeat; rules that ignore the seed run "
+                    f"once). Cells run this time: {summary['cells']['run']}, reused: "
+                    f"{summary['cells']['skipped']}.")]
+    blocks.append(("h2", "Recommendation"))
+    lines = [f"Full pool accuracy {rec['full_accuracy']:.4f}; a budget is enough when its mean "
+             f"accuracy is at least {rec['full_accuracy'] - rec['tolerance']:.4f} "
+             f"(tolerance {rec['tolerance']:g})."]
+    if rec["best"] is not None:
+        best = rec["rules"][rec["best"]]
+        lines.append(f"Fewest nodes: {rec['best']} reaches it with {best['training_nodes']:,} "
+                     f"training nodes (budget {best['budget']:g}, accuracy {best['accuracy']:.4f}).")
+    blocks.append(("p", " ".join(lines)))
+    blocks.append(("table", ["rule", "smallest enough budget", "training nodes", "mean accuracy"],
+                   [[rule, "none" if v is None else f"{v['budget']:g}",
+                     "" if v is None else f"{v['training_nodes']:,}",
+                     "" if v is None else f"{v['accuracy']:.4f}"] for rule, v in rec["rules"].items()]))
+
+    blocks.append(("h2", "Accuracy by budget"))
+    sizes = sorted({r["training_nodes"] for r in rows})
+    header = ["rule"] + [f"{n:,}" for n in sizes]
+    body = []
+    for rule in fits:
+        means = {n: 1 - e for n, e in curve(rows, rule)}
+        body.append([rule] + [f"{means[n]:.4f}" if n in means else "" for n in sizes])
+    blocks.append(("p", "Mean accuracy over repeats; columns are training nodes."))
+    blocks.append(("table", header, body))
+
+    blocks.append(("h2", "Power-law fits: error ≈ a · n^(-alpha)"))
+    blocks.append(("table", ["rule", "alpha", "95% interval", "a", "R²", "points"],
+                   [[rule, _num(f["alpha"]), f"{_num(f['alpha_low'])} to {_num(f['alpha_high'])}",
+                     _num(f["a"]), _num(f["r2"]), str(f["points"])] for rule, f in fits.items()]))
+    blocks += _image(images, CURVES, "Error against training nodes, log-log")
+
+    blocks.append(("h2", "Per-class accuracy at the recommended budget"))
+    blocks.append(("p", CAUTION))
+    full = per_class_at(rows, next(iter(fits)), rec["pool"], classes)
+    header = ["class", "full pool"] + [r for r, v in rec["rules"].items() if v is not None]
+    body = []
+    for i, c in enumerate(classes):
+        line = [str(c), f"{full[i]:.3f}"]
+        for rule, v in rec["rules"].items():
+            if v is not None:
+                value = per_class_at(rows, rule, v["training_nodes"], classes)[i]
+                worse = value < full[i] - rec["tolerance"]
+                line.append(f"{value:.3f}" + (" (lower)" if worse else ""))
+        body.append(line)
+    blocks.append(("table", header, body))
+    blocks.append(("p", "\"(lower)\" marks a class more than the tolerance below the full pool."))
+    blocks += _image(images, PER_CLASS, "Per-class accuracy")
+
+    blocks.append(("h2", "What the subsets look like"))
+    diag = summary["diagnostics"]
+    pool = diag["pool"] or {}
+    blocks.append(("p", "Mean over repeats of the selection reports: degree, PageRank and label "
+                        "homophily of the chosen nodes, and the coverage radius (largest L2 "
+                        "distance from a target to its nearest chosen node) and mean distance. "
+                        f"Whole pool: degree {_num(pool.get('degree'))}, PageRank "
+                        f"{_num(pool.get('pagerank'))}, homophily {_num(pool.get('homophily'))}."))
+    body = []
+    for rule, by_k in diag["rules"].items():
+        for k, d in sorted(by_k.items(), key=lambda item: int(item[0])):
+            body.append([rule, f"{d['budget']:g}", f"{int(k):,}", _num(d["degree"]), _num(d["pagerank"]),
+                         _num(d["homophily"]), _num(d["radius"]), _num(d["mean_distance"])])
+    blocks.append(("table", ["rule", "budget", "nodes", "degree", "PageRank", "homophily",
+                             "radius", "mean distance"], body))
+    return blocks
+
+
+def _image(images, name, alt):
+    if name in images:
+        return [("img", name, images[name], alt)]
+    return [("p", f"Plot {name} skipped: matplotlib is not installed "
+                  f"(pip install 'bigprune[plot]').")]
+
+
+def _num(value):
+    if value is None or (isinstance(value, float) and not math.isfinite(value)):
+        return "n/a"
+    return f"{value:.4g}"
+
+
+# ---- rendering -------------------------------------------------------------------------------
+def markdown(blocks):
+    parts = []
+    for kind, *rest in blocks:
+        if kind == "h1":
+            parts.append(f"# {rest[0]}")
+        elif kind == "h2":
+            parts.append(f"## {rest[0]}")
+        elif kind == "p":
+            parts.append(rest[0])
+        elif kind == "table":
+            header, body = rest
+            lines = ["| " + " | ".join(header) + " |", "|" + "---|" * len(header)]
+            lines += ["| " + " | ".join(row) + " |" for row in body]
+            parts.append("\n".join(lines))
+        else:  # img: the PNG sits beside the report
+            parts.append(f"![{rest[2]}]({rest[0]})")
+    return "\n\n".join(parts) + "\n"
+
+
+def to_html(blocks):
+    body = []
+    for kind, *rest in blocks:
+        if kind in ("h1", "h2", "p"):
+            body.append(f"<{kind}>{html.escape(rest[0])}</{kind}>")
+        elif kind == "table":
+            header, rows = rest
+            head = "".join(f"<th>{html.escape(h)}</th>" for h in header)
+            cells = "".join("<tr>" + "".join(f"<td>{html.escape(c)}</td>" for c in row) + "</tr>"
+                            for row in rows)
+            body.append(f"<table><thead><tr>{head}</tr></thead><tbody>{cells}</tbody></table>")
+        else:
+            data = base64.b64encode(rest[1]).decode("ascii")
+            body.append(f'<img alt="{html.escape(rest[2])}" src="data:image/png;base64,{data}">')
+    style = ("body{font-family:sans-serif;max-width:60em;margin:2em auto;line-height:1.45}"
+             "table{border-collapse:collapse;margin:1em 0}td,th{border:1px solid #ccc;"
+             "padding:.25em .6em;text-align:right}td:first-child{text-align:left}img{max-width:100%}")
+    return ("<!DOCTYPE html>\n<html><head><meta charset=\"utf-8\"><title>bigprune study</title>"
+            f"<style>{style}</style></head><body>\n" + "\n".join(body) + "\n</body></html>\n")
