@@ -37,9 +37,13 @@ TOP = {"store": ("path", True, None), "memory_budget": ("size", False, DEFAULT_B
        "threads": ("int", False, None), "log": ("path", False, None)}
 INGEST = {"edges": ("path", True, None), "nodes": ("path", True, None), "features": ("path", False, None),
           "drop_unknown": ("bool", False, False)}
-PROPAGATE = {"hops": ("int", False, 2), "norm": ("str", False, "sym")}
-SELECT = {"strategy": ("str", True, None), "budget": ("number", True, None), "targets": ("str", False, "test"),
-          "seed": ("int", False, 0), "out": ("path", True, None)}
+PROPAGATE = {"hops": ("int", False, 2), "norm": ("str", False, "sym"), "dtype": ("str", False, "float32"),
+             "restrict": ("bool", False, False)}
+# keep_previous: start from the selection already at ``out`` (last night's) as the include list.
+SELECT = {"strategy": ("str", True, None), "budget": ("number", False, None), "targets": ("str", False, "test"),
+          "seed": ("int", False, 0), "out": ("path", True, None), "radius": ("number", False, None),
+          "min_per_class": ("number", False, None), "include": ("path", False, None),
+          "exclude": ("path", False, None), "keep_previous": ("bool", False, False)}
 STUDY = {"out": ("path", True, None), "budgets": ("numbers", False, [0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1.0]),
          "strategies": ("strs", False, None), "repeats": ("int", False, 3), "answers": ("path", False, None),
          "tolerance": ("number", False, 0.01), "targets": ("str", False, "test")}

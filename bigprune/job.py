@@ -40,7 +40,7 @@ def plan_job(job):
     steps.append({"stage": "ingest", "run": why is not None, "why": why or "inputs unchanged"})
 
     prop = stages.get("propagate")
-    wanted = {"hops": job["propagate"]["hops"], "norm": job["propagate"]["norm"]}
+    wanted = dict(job["propagate"])
     if steps[-1]["run"]:
         why = "the graph will be rebuilt"
     elif prop is None:
@@ -54,8 +54,9 @@ def plan_job(job):
     upstream = None if steps[-1]["run"] else prop["dir"]
     outputs = manifest.get("outputs", {})
     for entry in job["select"]:
-        params = {k: entry[k] for k in ("strategy", "budget", "targets", "seed")}
-        stamp = key(params, upstream) if upstream else None
+        params = {k: v for k, v in entry.items() if k != "out"}
+        lists = fingerprints([entry[k] for k in ("include", "exclude") if entry[k]])
+        stamp = key(params, _comparable({"lists": lists}), upstream) if upstream else None
         done = outputs.get(str(Path(entry["out"]).resolve()), {})
         present = Path(entry["out"]).exists() and Path(entry["out"]).with_suffix(".json").exists()
         if stamp is None:
@@ -107,7 +108,6 @@ def run_job(path, dry_run=False, echo=print):
         return steps
     from .ingest import ingest
     from .propagate import propagate
-    from .select import select
 
     opts = {"memory_budget": job["memory_budget"], "threads": job["threads"]}
     log = Path(job["log"]) if job["log"] else Path(job["store"]).parent / "bigprune-log.jsonl"
@@ -132,16 +132,32 @@ def run_job(path, dry_run=False, echo=print):
                 else:
                     entry = step["entry"]
                     Path(entry["out"]).parent.mkdir(parents=True, exist_ok=True)
-                    result = select(store, entry["strategy"], entry["budget"], targets=entry["targets"],
-                                    seed=entry["seed"], out=entry["out"], **opts)
-                    upstream = store.entry("propagate")["dir"]
-                    store.record_output(entry["out"], key(step["params"], upstream))
+                    result = _run_select(store, entry, opts)
+                    lists = fingerprints([entry[k] for k in ("include", "exclude") if entry[k]])
+                    store.record_output(entry["out"], key(step["params"], _comparable({"lists": lists}),
+                                                          store.entry("propagate")["dir"]))
             except BigpruneError as exc:
                 _log(log, step, "failed", started, {"error": str(exc)})
                 raise
             _log(log, step, "done", started, _rows(result))
             step["result"] = result
     return steps
+
+
+def _run_select(store, entry, opts):
+    """One [[select]] table; with ``keep_previous`` the selection already at ``out`` (last
+    night's) is kept and seeds today's, and the report counts what changed."""
+    from .select import select
+
+    include = entry["include"]
+    if entry["keep_previous"] and Path(entry["out"]).exists():
+        if include:
+            raise InputError(f"[[select]] {entry['out']}: use keep_previous or include, not both")
+        include = entry["out"]  # read whole before the new selection replaces it
+    Path(entry["out"]).parent.mkdir(parents=True, exist_ok=True)
+    return select(store, entry["strategy"], entry["budget"], targets=entry["targets"], seed=entry["seed"],
+                  out=entry["out"], include=include, exclude=entry["exclude"],
+                  min_per_class=entry["min_per_class"], radius=entry["radius"], **opts)
 
 
 def _run_study(store, step, opts):
@@ -158,7 +174,7 @@ def _run_study(store, step, opts):
 
 
 def _rows(result):
-    keys = ("nodes", "undirected_edges", "selected", "targets", "hops", "cells_run", "best")
+    keys = ("nodes", "undirected_edges", "selected", "targets", "hops", "changed", "cells_run", "best")
     return {k: result[k] for k in keys if isinstance(result, dict) and k in result}
 
 
