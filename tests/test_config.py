@@ -28,7 +28,7 @@ def write(tmp_path, text):
 def test_defaults_and_paths(tmp_path):
     job = load_job(write(tmp_path, GOOD))
     assert job["store"] == str(tmp_path / "store")
-    assert job["propagate"] == {"hops": 3, "norm": "sym"}
+    assert job["propagate"] == {"hops": 3, "norm": "sym", "dtype": "float32", "restrict": False}
     assert job["select"][0]["targets"] == "test" and job["select"][0]["seed"] == 0
     assert job["select"][0]["out"] == str(tmp_path / "picks/k.parquet")
 
