@@ -11,8 +11,10 @@ Graph stage (``bigprune ingest``), row ``i`` of every array is the node with den
 - ``weight.npy`` (float32, nnz): edge weights, present only when the edges had a weight column;
 - ``features.npy`` (float32, n x d): the input features (hop 0).
 
-Propagate stage (``bigprune propagate``): ``hop_1.npy`` ... ``hop_K.npy`` (float32, n x d) and
-``pagerank.npy`` (float64, n).
+Propagate stage (``bigprune propagate``): ``hop_1.npy`` ... ``hop_K.npy`` (float32, or float16
+with ``--dtype float16``; n x d) and ``pagerank.npy`` (float64, n). With ``--restrict`` the last
+hops are computed only for the rows later stages read; ``computed_through.npy`` (int8, n) then
+holds the last hop computed for each row, and rows not computed hold NaN.
 """
 NO_SPLIT = 0
 SPLIT_CODES = {"train": 1, "valid": 2, "test": 3}
