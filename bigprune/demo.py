@@ -17,9 +17,11 @@ DEMO_NODES = 100_000
 DEMO_BUDGET = 0.02
 DEMO_STRATEGIES = ("kcenter", "kcenter-pool", "random", "degree", "pagerank")
 # The small study the demo runs: how many training nodes each rule needs to come within one
-# accuracy point of the full pool, scored on this week's answers.
-DEMO_STUDY = {"strategies": ("kcenter", "random"), "budgets": (0.01, 0.02, 0.05, 0.1, 0.2, 1),
-              "repeats": 3, "tolerance": 0.01}
+# accuracy point of the full pool, scored on this week's answers. The rungs reach 0.2 because on
+# 100k listings neither rule comes within the point below 0.05; two repeats keep the demo near a
+# minute (the k-supplier greedy ignores the seed and runs once per budget).
+DEMO_STUDY = {"strategies": ("kcenter", "random"), "budgets": (0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 1),
+              "repeats": 2, "tolerance": 0.01}
 STAMP = "demo-params.json"
 
 

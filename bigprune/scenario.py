@@ -6,13 +6,18 @@ latent areas) and a degree propensity drawn from a power law. Edges follow a deg
 stochastic block model: the first endpoint is drawn in proportion to the propensity, the second
 too, restricted to the first endpoint's department with probability ``homophily`` and to its
 neighbourhood with probability ``locality``. Features are ``dim``-dimensional description
-embeddings: department mean + neighbourhood offset + noise, noisy enough that smoothing over the
-graph helps.
+embeddings: department mean + neighbourhood offset + a local style of the department in that
+neighbourhood + noise, noisy enough that smoothing over the graph helps. The local style (local
+vocabulary, the typical items of a department there) moves the boundary between departments from
+one neighbourhood to the next, so a classifier learnt in some neighbourhoods transfers imperfectly
+to others.
 
 Moderated listings form the training pool (``train`` and ``valid``, labelled). This week's
 listings are the targets (``test``, label null in the node table, true labels in
-``answers.parquet``), drawn with weights that favour a few departments and neighbourhoods, so
-they are not distributed like the pool. Everything else has split and label null.
+``answers.parquet``), drawn with weights that favour a few departments and a few busy
+neighbourhoods, so they are not distributed like the pool; moderators reviewed the busy
+neighbourhoods thinly (``busy_review``), so the pool has few listings there. Everything else has
+split and label null.
 
 Output layout::
 
@@ -20,9 +25,10 @@ Output layout::
     directory/nodes.parquet                           node_id, split, label, features
     directory/answers.parquet                         node_id, label
 
-Everything is written in fixed-size blocks whose random streams are keyed by block position, so
-the output depends only on the arguments, and memory holds a few per-node arrays (about 30 bytes
-per node, up to about 70 while they are built) plus one block, never all features or all edges.
+Everything is written in fixed-size blocks whose random streams are keyed by block position (a
+local style's by its department and neighbourhood), so the output depends only on the arguments,
+and memory holds a few per-node arrays (about 30 bytes per node, up to about 70 while they are
+built) plus a block or two, never all features or all edges.
 """
 import datetime
 import os
@@ -44,7 +50,9 @@ REGION_SPREAD = 2.0      # Dirichlet concentration of neighbourhood sizes (large
 NOISE = 4.5              # per-dimension noise s.d.; department means are N(0, 1) per dimension
 REGION_SCALE = 1.0       # per-dimension s.d. of neighbourhood offsets
 TARGET_DEPT_BOOST = 4.0  # weight of an over-represented department when drawing targets
-TARGET_REGION_BOOST = 5.0
+# Weight of a busy neighbourhood when drawing targets: the busy tenth of the neighbourhoods
+# holds about half of this week's listings (40-65% in the demo's seeds 0 and 1).
+TARGET_REGION_BOOST = 15.0
 SPLIT_NAMES = ("train", "valid", "test")  # split codes 1, 2, 3; 0 is null
 _ID_MASK = np.uint64((1 << 63) - 1)
 _HEX = np.frombuffer(b"0123456789abcdef", dtype=np.uint8)
@@ -66,6 +74,8 @@ _BOUNDS = {
     "train_fraction": ("real", 0.0, 1.0, True, "a number in (0, 1]"),
     "valid_fraction": ("real", 0.0, 1.0, False, "a number in [0, 1]"),
     "test_fraction": ("real", 0.0, 1.0, True, "a number in (0, 1]"),
+    "local_style": ("real", 0.0, 100.0, False, "a number in [0, 100]"),
+    "busy_review": ("real", 0.0, 1.0, False, "a number in [0, 1]"),
 }
 ID_TYPES = ("int64", "string")
 
@@ -73,7 +83,7 @@ ID_TYPES = ("int64", "string")
 def generate(directory, nodes=50_000, avg_degree=10, seed=0, exponent=2.5, homophily=0.7,
              classes=12, dim=64, days=4, parts_per_day=2, id_type="int64", weighted=False,
              train_fraction=0.4, valid_fraction=0.05, test_fraction=0.05, regions=40,
-             locality=0.5):
+             locality=0.5, local_style=1.0, busy_review=0.2):
     """Write the marketplace scenario into ``directory`` (new or empty).
 
     Parameters
@@ -103,6 +113,14 @@ def generate(directory, nodes=50_000, avg_degree=10, seed=0, exponent=2.5, homop
         Shares of the nodes in each split; the rest have a null split.
     locality : float
         Probability that the second endpoint is drawn from the first one's neighbourhood.
+    local_style : float
+        Per-dimension s.d. of each (department, neighbourhood) offset; department means have
+        s.d. 1, so at 1 a department looks about as different between neighbourhoods as two
+        departments do on average. 0 makes features class mean + neighbourhood offset + noise.
+    busy_review : float
+        Weight of a listing in a busy neighbourhood (elsewhere: 1) in the weighted sample of
+        non-targets that forms the pool; below 1 the pool covers the busy neighbourhoods thinly,
+        at 1 it is a uniform sample.
 
     Returns
     -------
@@ -115,7 +133,7 @@ def generate(directory, nodes=50_000, avg_degree=10, seed=0, exponent=2.5, homop
                 homophily=homophily, classes=classes, dim=dim, days=days,
                 parts_per_day=parts_per_day, train_fraction=train_fraction,
                 valid_fraction=valid_fraction, test_fraction=test_fraction, regions=regions,
-                locality=locality)
+                locality=locality, local_style=local_style, busy_review=busy_review)
     for name, value in args.items():
         _check(name, value)
     if id_type not in ID_TYPES:
@@ -154,11 +172,11 @@ def _check(name, value):
 
 
 def _generate(directory, counts, *, nodes, avg_degree, seed, exponent, homophily, classes, dim,
-              days, parts_per_day, regions, locality, id_type, weighted):
+              days, parts_per_day, regions, locality, local_style, busy_review, id_type, weighted):
     """Validated twin of :func:`generate`: writes into a staging folder, then moves into place."""
     layout_rng = _rng(seed, 0)
     dept, region, theta = _layout(layout_rng, nodes, classes, regions, exponent, avg_degree)
-    split = _splits(layout_rng, dept, region, counts, classes, regions)
+    split = _splits(layout_rng, dept, region, counts, classes, regions, busy_review)
     mean = layout_rng.standard_normal((classes, dim)).astype(np.float32)
     offset = (REGION_SCALE * layout_rng.standard_normal((regions, dim))).astype(np.float32)
     id_key = int(layout_rng.integers(0, 1 << 62))
@@ -170,7 +188,8 @@ def _generate(directory, counts, *, nodes, avg_degree, seed, exponent, homophily
     staging = directory / ".generating"
     try:
         staging.mkdir()
-        _write_nodes(staging, seed, dept, region, split, mean, offset, id_key, id_type)
+        _write_nodes(staging, seed, dept, region, split, mean, offset, local_style, id_key,
+                     id_type)
         edges = round(nodes * avg_degree / 2)
         written = _write_edges(staging / "edges", seed, edges, days, parts_per_day, dept, region,
                                by_dept, by_region, homophily, locality, id_key, id_type, weighted)
@@ -207,26 +226,32 @@ def _layout(rng, n, classes, regions, exponent, avg_degree):
     return dept, region, theta
 
 
-def _splits(rng, dept, region, counts, classes, regions):
+def _splits(rng, dept, region, counts, classes, regions, busy_review):
     """Split codes (int8: 0 null, 1 train, 2 valid, 3 test).
 
     Targets are a weighted sample without replacement (Efraimidis & Spirakis 2006: the k
-    smallest of Exp(1) / w) favouring a few departments and neighbourhoods; the pool is a
-    uniform sample of the rest.
+    smallest of Exp(1) / w) favouring a few departments and busy neighbourhoods; the pool is a
+    weighted sample of the rest in which a busy neighbourhood's listings weigh ``busy_review``.
     """
     n = len(dept)
     dept_weight = np.ones(classes)
     dept_weight[rng.choice(classes, size=max(1, classes // 4), replace=False)] = TARGET_DEPT_BOOST
-    region_weight = np.ones(regions)
-    region_weight[rng.choice(regions, size=max(1, regions // 10), replace=False)] = TARGET_REGION_BOOST
-    key = rng.exponential(size=n) / (dept_weight[dept] * region_weight[region])
+    busy = np.zeros(regions, dtype=bool)
+    busy[rng.choice(regions, size=max(1, regions // 10), replace=False)] = True
+    key = rng.exponential(size=n) / (dept_weight[dept] * np.where(busy, TARGET_REGION_BOOST, 1.0)[region])
     split = np.zeros(n, dtype=np.int8)
     split[np.argpartition(key, counts["test"] - 1)[:counts["test"]]] = 3
-    del key
     rest = np.flatnonzero(split == 0)
-    rng.shuffle(rest)
+    pool = counts["train"] + counts["valid"]
+    if pool < len(rest):
+        # Exp(1) / 0 is inf: with busy_review 0 busy listings join only when nothing else is left
+        with np.errstate(divide="ignore"):
+            key = rng.exponential(size=len(rest)) / np.where(busy, busy_review, 1.0)[region[rest]]
+        rest = rest[np.argpartition(key, pool - 1)[:pool]]
+    del key
+    rng.shuffle(rest)  # the pool's order is the weighted sample's, so shuffle before splitting
     split[rest[:counts["train"]]] = 1
-    split[rest[counts["train"]:counts["train"] + counts["valid"]]] = 2
+    split[rest[counts["train"]:pool]] = 2
     return split
 
 
@@ -339,7 +364,20 @@ def _id_array(index, key, id_type):
     return pa.StringArray.from_buffers(k, pa.py_buffer(offsets), pa.py_buffer(text.reshape(-1)))
 
 
-def _write_nodes(staging, seed, dept, region, split, mean, offset, id_key, id_type):
+def _local_styles(seed, cells, dim, scale):
+    """(len(cells), dim) float32 offsets of (department, region) cells, one stream per cell.
+
+    A cell's offset is drawn from its own stream, so it is the same in every block without a
+    table of all ``classes * regions`` cells in memory.
+    """
+    out = np.empty((len(cells), dim), dtype=np.float32)
+    for i, cell in enumerate(cells.tolist()):
+        out[i] = _rng(seed, 3, cell).standard_normal(dim, dtype=np.float32)
+    out *= scale
+    return out
+
+
+def _write_nodes(staging, seed, dept, region, split, mean, offset, local_style, id_key, id_type):
     import pyarrow as pa
     import pyarrow.parquet as pq
 
@@ -360,6 +398,10 @@ def _write_nodes(staging, seed, dept, region, split, mean, offset, id_key, id_ty
             x *= NOISE
             x += mean[d]
             x += offset[region[start:stop]]
+            if local_style > 0:
+                cells, which = np.unique(d.astype(np.int64) * len(offset) + region[start:stop],
+                                         return_inverse=True)
+                x += _local_styles(seed, cells, dim, local_style)[which]
             ids = _id_array(np.arange(start, stop), id_key, id_type)
             labelled = (s == 1) | (s == 2)
             label = pa.array(d.astype(np.int64), mask=~labelled)

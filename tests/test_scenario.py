@@ -7,6 +7,7 @@ import pyarrow as pa
 import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 import pytest
+import scipy.optimize as opt
 import scipy.sparse as sp
 import scipy.stats as st
 from sklearn.linear_model import LogisticRegression
@@ -231,6 +232,73 @@ def test_features_informative_but_noisy_and_smoothing_helps(demo):
     assert smoothed > raw + 0.15
 
 
+def _regions(g, seed, regions, classes=12):
+    """Each node's neighbourhood, rebuilt from the generator's layout stream (checked on the labels)."""
+    n = len(g["label"])
+    dept, region, _ = scenario._layout(scenario._rng(seed, 0), n, classes, regions, 2.5, 10)
+    known = g["label"] >= 0
+    assert np.array_equal(dept[known], g["label"][known])  # the rebuild matches the files
+    return region
+
+
+def _smoothed(g):
+    """Two SGC hops (Wu et al., 2019) with D^-1/2 (A + I) D^-1/2 (scipy.sparse)."""
+    n = len(g["label"])
+    adj = simple_adjacency(g["src"], g["dst"], n) + sp.eye(n)
+    scale = sp.diags(1 / np.sqrt(np.asarray(adj.sum(axis=1)).ravel()))
+    norm = (scale @ adj @ scale).tocsr()
+    return norm @ (norm @ g["features"].astype(np.float64))
+
+
+def test_local_style_makes_departments_look_different_by_neighbourhood(tmp_path):
+    # A classifier learnt in other neighbourhoods (three times as many listings) against one
+    # learnt in the neighbourhood itself, both scored on held-out listings there. Without local
+    # style only the class-independent neighbourhood offset separates them.
+    gaps = []
+    for style in (0.0, 1.0, 2.0):
+        g = read(generate(tmp_path / f"s{style}", nodes=20_000, regions=4, dim=16, seed=4,
+                          local_style=style, busy_review=1.0))
+        region, x, y = _regions(g, 4, 4), _smoothed(g), g["label"]
+        pool = np.isin(g["split"], ["train", "valid"])
+        rng = np.random.default_rng(0)
+        gap = []
+        for r in range(4):
+            here = rng.permutation(np.flatnonzero(pool & (region == r)))
+            learn, score = here[:len(here) // 2], here[len(here) // 2:]
+            away = rng.choice(np.flatnonzero(pool & (region != r)), size=3 * len(learn), replace=False)
+            # reference: scikit-learn LogisticRegression, one BLAS thread (see below)
+            with threadpool_limits(1):
+                inside = LogisticRegression(max_iter=500).fit(x[learn], y[learn])
+                outside = LogisticRegression(max_iter=500).fit(x[away], y[away])
+            gap.append(inside.score(x[score], y[score]) - outside.score(x[score], y[score]))
+        gaps.append(np.mean(gap))
+    # ~1,200 scored listings per neighbourhood: s.e. of a mean gap about 0.01
+    assert gaps[0] < 0.06
+    assert gaps[1] > gaps[0] + 0.03 and gaps[2] > gaps[1] + 0.05
+
+
+@pytest.mark.parametrize("busy_review", [0.2, 1.0])
+def test_pool_is_thin_in_busy_neighbourhoods(tmp_path, busy_review):
+    g = read(generate(tmp_path / "out", nodes=20_000, seed=6, busy_review=busy_review))
+    region = _regions(g, 6, 40)
+    # The busy tenth of the neighbourhoods: where targets are densest.
+    density = np.bincount(region[g["split"] == "test"], minlength=40) / np.bincount(region, minlength=40)
+    busy = np.isin(region, np.argsort(density)[-4:])
+    rest = g["split"] != "test"
+    pool = np.isin(g["split"], ["train", "valid"])
+    n_busy, n_else = np.sum(rest & busy), np.sum(rest & ~busy)
+    # Efraimidis & Spirakis (2006): the k smallest of Exp(1) / w take an item of weight w with
+    # probability 1 - exp(-w t) for the threshold t, solved here for the pool's size (scipy brentq).
+    t = opt.brentq(lambda t: n_else * -np.expm1(-t) + n_busy * -np.expm1(-busy_review * t) - pool.sum(),
+                   1e-9, 1e3)
+    expected = -np.expm1(-busy_review * t) / -np.expm1(-t)
+    measured = np.mean(pool[rest & busy]) / np.mean(pool[rest & ~busy])
+    # ~1,500 busy non-targets: s.e. of the measured ratio about 0.03
+    assert abs(measured - expected) < 0.1
+    if busy_review < 1:
+        assert measured < 0.5
+
+
 # ---- validation -------------------------------------------------------------------------------
 @pytest.mark.parametrize("kwargs,message", [
     ({"nodes": 1}, "nodes 1 is out of range: use an integer >= 2"),
@@ -244,6 +312,8 @@ def test_features_informative_but_noisy_and_smoothing_helps(demo):
     ({"weighted": "yes"}, "weighted 'yes' must be True or False"),
     ({"train_fraction": 0.6, "test_fraction": 0.5},
      "train_fraction + valid_fraction + test_fraction = 1.15 must be at most 1"),
+    ({"local_style": -1.0}, "local_style -1.0 is out of range: use a number in [0, 100]"),
+    ({"busy_review": 2}, "busy_review 2 is out of range: use a number in [0, 1]"),
     ({"nodes": 10, "test_fraction": 0.01},
      "test_fraction 0.01 leaves no test node among 10: use at least 0.1"),
 ])
