@@ -56,15 +56,17 @@ class NodeTable:
                 or pa.types.is_dictionary(column.type) or pa.types.is_null(column.type)):
             raise InputError(f"--nodes {self.path}: column 'split' has type {column.type}; "
                              "use strings train, valid, test or null")
-        values = column.cast(pa.string()).to_numpy(zero_copy_only=False)
-        codes = np.full(len(values), NO_SPLIT, dtype=np.int8)
-        for name, code in SPLIT_CODES.items():
-            codes[values == name] = code
-        bad = np.flatnonzero((codes == NO_SPLIT) & (values != None))  # noqa: E711 (element-wise)
-        if bad.size:
-            raise InputError(f"--nodes {self.path}: column 'split' row {bad[0]} holds {values[bad[0]]!r}; "
+        # Dictionary-encode so that the per-row work is on small integer codes, never on Python
+        # strings (an object array of 10^8 strings would not fit any sensible budget).
+        encoded = column.cast(pa.string()).combine_chunks().dictionary_encode()
+        names = encoded.dictionary.to_pylist()
+        unknown = [i for i, name in enumerate(names) if name not in SPLIT_CODES]
+        if unknown:
+            row = int(np.flatnonzero(encoded.indices.to_numpy(zero_copy_only=False) == unknown[0])[0])
+            raise InputError(f"--nodes {self.path}: column 'split' row {row} holds {names[unknown[0]]!r}; "
                              "use train, valid, test or null")
-        return codes
+        lookup = np.array([SPLIT_CODES[name] for name in names] + [NO_SPLIT], dtype=np.int8)
+        return lookup[encoded.indices.fill_null(len(names)).to_numpy(zero_copy_only=False)]
 
     def _labels(self, column):
         mask = column.is_null().to_numpy(zero_copy_only=False)
@@ -93,9 +95,16 @@ class NodeTable:
         if nulls:
             row = int(np.flatnonzero(self.ids.is_null().to_numpy(zero_copy_only=False))[0])
             raise InputError(f"--nodes {self.path}: column 'node_id' is null at row {row}")
-        counts = pc.value_counts(self.ids)
-        if len(counts) != len(self.ids):
-            dup = counts.filter(pc.greater(counts.field("counts"), 1))[0]["values"].as_py()
+        if self.id_kind == "int":  # a sorted copy costs 8 bytes a node; a hash table several times that
+            ordered = np.sort(self.ids.to_numpy())
+            repeats = np.flatnonzero(ordered[1:] == ordered[:-1])
+            dup = int(ordered[repeats[0]]) if repeats.size else None
+            del ordered
+        else:
+            counts = pc.value_counts(self.ids)
+            repeated = counts.filter(pc.greater(counts.field("counts"), 1))
+            dup = repeated[0]["values"].as_py() if len(repeated) else None
+        if dup is not None:
             raise InputError(f"--nodes {self.path}: column 'node_id' repeats id {dup!r}; ids must be unique")
 
     # ---- features ------------------------------------------------------------------------
