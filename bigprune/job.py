@@ -215,7 +215,7 @@ def check_job(path, echo=print):
     ingest = job["ingest"]
     if not Path(ingest["nodes"]).is_file():
         raise InputError(f"--nodes {ingest['nodes']}: no such file")
-    table = NodeTable(ingest["nodes"], needs_features=ingest["features"] is None)
+    table = NodeTable(ingest["nodes"], needs_features=ingest["features"] is None).load()
     edges = EdgeFiles(edge_files(ingest["edges"]), table.id_kind)
     from .strategies import STRATEGIES
 

@@ -13,7 +13,8 @@ from .sources import id_kind, is_numeric, open_parquet, read_error
 
 
 class NodeTable:
-    """The checked columns of ``--nodes``: ``ids`` (Arrow), ``split`` (int8), ``label`` (int64)."""
+    """``--nodes``: its schema and row count on opening; ``load()`` reads and checks the columns
+    ``ids`` (Arrow), ``split`` (int8) and ``label`` (int64)."""
 
     def __init__(self, path, needs_features):
         self.path = path
@@ -40,16 +41,20 @@ class NodeTable:
         self.rows = self.file.metadata.num_rows
         if self.rows == 0:
             raise InputError(f"--nodes {path}: the node table has no rows")
+
+    def load(self):
+        """Read ids, splits and labels and check them; returns self."""
         try:
             table = self.file.read(columns=["node_id", "split", "label"])
         except (OSError, pa.ArrowException) as exc:
-            raise read_error(path, "--nodes", exc) from None
+            raise read_error(self.path, "--nodes", exc) from None
         self.ids = table.column("node_id").combine_chunks()
         if pa.types.is_dictionary(self.ids.type):
             self.ids = self.ids.dictionary_decode()
         self.split = self._split_codes(table.column("split"))
         self.label = self._labels(table.column("label"))
         self._check_ids()
+        return self
 
     def _split_codes(self, column):
         if not (pa.types.is_string(column.type) or pa.types.is_large_string(column.type)

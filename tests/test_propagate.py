@@ -183,7 +183,7 @@ def test_budget_below_the_fixed_overhead_is_refused_by_the_command(small_store, 
     assert code == 3
     assert err.startswith("bigprune propagate: error: --memory-budget 100.0 MiB is too small for "
                           "propagating 300 x 8 features over ")
-    assert err.endswith(" entries: use at least 400.1 MiB")  # the overhead plus a few kB
+    assert err.endswith(" entries: use at least 320.1 MiB")  # memory.FIXED_OVERHEAD plus a few kB
     assert "propagate" not in Store(small_store.path).manifest()["stages"]
 
 
