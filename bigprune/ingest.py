@@ -5,7 +5,7 @@ import numpy as np
 import pyarrow as pa
 
 from .arrayfile import NpyFile
-from .errors import BudgetError, InputError
+from .errors import BudgetError
 from .edges import EdgeFiles, build_csr, register_ids, scan_error
 from .fingerprint import fingerprints
 from .memory import DEFAULT_BUDGET, FIXED_OVERHEAD, MIB, format_size, parse_size, peak_rss, working_memory

@@ -1,4 +1,7 @@
 """Shared fixtures: stores built straight from arrays, so stage tests need no ingest."""
+import hashlib
+from pathlib import Path
+
 import numpy as np
 import pyarrow as pa
 import pytest
@@ -52,3 +55,13 @@ def small_store(tmp_path):
     label = np.where(split == 3, NO_LABEL, label)
     label[240:] = NO_LABEL
     return write_graph_store(tmp_path / "store", adj, features, split, label)
+
+
+def tree_digest(root):
+    """sha256 over every path and file below ``root`` (a store must come back byte-identical)."""
+    h = hashlib.sha256()
+    for path in sorted(Path(root).rglob("*")):
+        h.update(str(path.relative_to(root)).encode())
+        if path.is_file():
+            h.update(path.read_bytes())
+    return h.hexdigest()

@@ -5,7 +5,6 @@ or key), the column and row where there is one, and the problem; no traceback; a
 it was: byte for byte when it existed, absent when it did not.
 """
 import errno
-import hashlib
 import json
 import os
 import shutil
@@ -14,7 +13,6 @@ import sys
 import threading
 import time
 from contextlib import contextmanager
-from pathlib import Path
 
 import networkx as nx
 import numpy as np
@@ -25,6 +23,7 @@ import pytest
 
 from bigprune.cli import main
 from bigprune.scenario import generate
+from conftest import tree_digest
 
 NODES = 2000
 
@@ -70,14 +69,6 @@ def _ingest_args(root, store, **options):
     return flat
 
 
-def digest(root):
-    """sha256 over every path and file below ``root`` (a store must come back byte-identical)."""
-    h = hashlib.sha256()
-    for path in sorted(Path(root).rglob("*")):
-        h.update(str(path.relative_to(root)).encode())
-        if path.is_file():
-            h.update(path.read_bytes())
-    return h.hexdigest()
 
 
 def one_error_line(capsys, command):
@@ -481,7 +472,7 @@ def fifo_guard(root):
 @pytest.mark.parametrize("fresh", [True, False], ids=["new store", "existing store"])
 def test_ingest_refuses(work, capsys, case, fresh):
     store = work / ("new" if fresh else "store")
-    before = None if fresh else digest(store)
+    before = None if fresh else tree_digest(store)
     options, expected = INGEST_CASES[case](work)
     capsys.readouterr()
     with fifo_guard(work):
@@ -493,7 +484,7 @@ def test_ingest_refuses(work, capsys, case, fresh):
     if fresh:
         assert not store.exists()
     else:
-        assert digest(store) == before
+        assert tree_digest(store) == before
 
 
 def test_drop_unknown_counts_what_it_drops(work, capsys):
@@ -530,7 +521,7 @@ def test_unreadable_partition(work, capsys):
     setpriv = shutil.which("setpriv")
     if setpriv is None:
         pytest.skip("util-linux setpriv is not installed")
-    before = digest(work / "store")
+    before = tree_digest(work / "store")
     part(work, 1).chmod(0)
     caps = "-dac_override,-dac_read_search"
     for store in (work / "store", work / "new"):
@@ -539,7 +530,7 @@ def test_unreadable_partition(work, capsys):
         assert run.returncode == 2, run.stderr
         assert run.stderr.count("\n") == 1 and "Traceback" not in run.stderr, run.stderr
         assert f"--edges {part(work, 1)}: permission denied" in run.stderr
-    assert digest(work / "store") == before and not (work / "new").exists()
+    assert tree_digest(work / "store") == before and not (work / "new").exists()
 
 
 # ---- the store and the job file -------------------------------------------------------------
@@ -547,7 +538,7 @@ def test_store_of_a_newer_format(work, full, capsys):
     manifest = json.loads((work / "full" / "manifest.json").read_text())
     manifest["format_version"] += 1
     (work / "full" / "manifest.json").write_text(json.dumps(manifest))
-    before = digest(work / "full")
+    before = tree_digest(work / "full")
     expected = f"manifest.json: store format version {manifest['format_version']} is newer"
     assert main(_ingest_args(work, work / "full")) == 2
     assert expected in one_error_line(capsys, "ingest")
@@ -559,15 +550,15 @@ def test_store_of_a_newer_format(work, full, capsys):
     (work / "job.toml").write_text(JOB.replace('store = "store"', 'store = "full"'))
     assert main(["run", str(work / "job.toml"), "--quiet"]) == 2
     assert expected in one_error_line(capsys, "run")
-    assert digest(work / "full") == before and not (work / "pick.parquet").exists()
+    assert tree_digest(work / "full") == before and not (work / "pick.parquet").exists()
 
 
 def test_unreadable_manifest(work, capsys):
     (work / "store" / "manifest.json").write_text("{not json")
-    before = digest(work / "store")
+    before = tree_digest(work / "store")
     assert main(_ingest_args(work, work / "store")) == 2
     assert "manifest.json: not a readable bigprune manifest" in one_error_line(capsys, "ingest")
-    assert digest(work / "store") == before
+    assert tree_digest(work / "store") == before
 
 
 def test_store_path_is_a_file(work, capsys):
@@ -613,12 +604,12 @@ def test_job_file_refused(work, capsys, case, fresh):
     command, edit, expected = JOB_CASES[case]
     if fresh:
         shutil.rmtree(work / "store")
-    before = None if fresh else digest(work / "store")
+    before = None if fresh else tree_digest(work / "store")
     (work / "job.toml").write_text(edit(JOB))
     assert main([command, str(work / "job.toml"), "--quiet"]) == 2
     err = one_error_line(capsys, command)
     assert expected.format(job=work / "job.toml", dir=work) in err, err
-    assert (not (work / "store").exists()) if fresh else digest(work / "store") == before
+    assert (not (work / "store").exists()) if fresh else tree_digest(work / "store") == before
     assert not (work / "pick.parquet").exists()
 
 
@@ -643,7 +634,7 @@ SELECT_CASES = {
 @pytest.mark.parametrize("case", list(SELECT_CASES))
 def test_select_refuses(work, full, capsys, case):
     store = full
-    before = digest(store)
+    before = tree_digest(store)
     pool = _pool_size(store)
     extra, expected = SELECT_CASES[case]
     fill = {"pool": pool, "pool_plus": pool + 1, "store": store, "tmp": work}
@@ -652,13 +643,13 @@ def test_select_refuses(work, full, capsys, case):
     assert main(["select", "--quiet", *[x for kv in args.items() for x in kv]]) == 2
     err = one_error_line(capsys, "select")
     assert expected.format(**fill) in err, err
-    assert digest(store) == before
+    assert tree_digest(store) == before
     assert not list(work.glob("picks.*")) and not list(store.glob("picks.*"))
 
 
 def test_select_without_propagate(work, capsys):
-    before = digest(work / "store")
+    before = tree_digest(work / "store")
     assert main(["select", "--store", str(work / "store"), "--strategy", "random", "--budget", "5",
                  "--out", str(work / "p.parquet"), "--quiet"]) == 2
     assert "has no propagate stage yet; run bigprune propagate first" in one_error_line(capsys, "select")
-    assert digest(work / "store") == before
+    assert tree_digest(work / "store") == before

@@ -1,7 +1,5 @@
 """Ingest: Parquet in, CSR out, checked against networkx and scipy; bad input refused cleanly."""
-import hashlib
 import importlib
-from pathlib import Path
 
 import networkx as nx
 import numpy as np
@@ -13,6 +11,7 @@ import scipy.sparse as sp
 from bigprune.cli import main
 from bigprune.ingest import ingest
 from bigprune.store import Store
+from conftest import tree_digest
 
 
 def karate_files(root, id_type="int", weighted=False, repeat=True):
@@ -79,13 +78,6 @@ def test_glob_and_single_file(tmp_path):
     assert s1["undirected_edges"] == 78 and s2["undirected_edges"] == 40
 
 
-def _digest(root):
-    h = hashlib.sha256()
-    for p in sorted(Path(root).rglob("*")):
-        h.update(str(p.relative_to(root)).encode())
-        if p.is_file():
-            h.update(p.read_bytes())
-    return h.hexdigest()
 
 
 def _rewrite(path, **changes):
@@ -129,7 +121,7 @@ def test_bad_input_exits_2_and_keeps_store(tmp_path, capsys, case, fresh):
             "--store", str(store), "--quiet"]
     if not fresh:
         assert main(args) == 0
-        before = _digest(store)
+        before = tree_digest(store)
     capsys.readouterr()
     damage, expected = BAD_INPUTS[case]
     damage(tmp_path)
@@ -139,7 +131,7 @@ def test_bad_input_exits_2_and_keeps_store(tmp_path, capsys, case, fresh):
     if fresh:
         assert not store.exists()
     else:
-        assert _digest(store) == before
+        assert tree_digest(store) == before
 
 
 def test_budget_too_small_exits_3(tmp_path, capsys):

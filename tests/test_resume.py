@@ -5,7 +5,6 @@ The kill trials use ``bench/resume.py``'s helpers (a subprocess SIGKILLed at a c
 the reference is the same job run once uninterrupted.
 """
 import errno
-import hashlib
 import importlib.util
 import json
 import os
@@ -21,6 +20,7 @@ import pytest
 
 from bigprune.cli import main
 from bigprune.scenario import generate
+from conftest import tree_digest
 
 ROOT = Path(__file__).resolve().parents[1]
 _spec = importlib.util.spec_from_file_location("bench_resume", ROOT / "bench" / "resume.py")
@@ -50,13 +50,6 @@ def done(scenario, tmp_path):
     return tmp_path / "job"
 
 
-def digest(root):
-    h = hashlib.sha256()
-    for path in sorted(Path(root).rglob("*")):
-        h.update(str(path.relative_to(root)).encode())
-        if path.is_file():
-            h.update(path.read_bytes())
-    return h.hexdigest()
 
 
 def plan(job, capsys):
@@ -91,7 +84,7 @@ def test_live_lock_refuses_with_exit_4(done, capsys):
     try:
         lock = done / "store" / ".lock"
         lock.write_text(f"{holder.pid} {socket.gethostname()}")
-        before = digest(done)
+        before = tree_digest(done)
         capsys.readouterr()
         for args in (["run", str(done / "job.toml")],
                      ["ingest", "--edges", str(done.parent / "data" / "edges"), "--nodes",
@@ -100,7 +93,7 @@ def test_live_lock_refuses_with_exit_4(done, capsys):
             err = capsys.readouterr().err
             assert err.count("\n") == 1 and "Traceback" not in err
             assert f"in use by process {holder.pid} on {socket.gethostname()} (lock file {lock})" in err
-        assert digest(done) == before
+        assert tree_digest(done) == before
     finally:
         holder.kill()
         holder.wait()
@@ -130,12 +123,12 @@ def test_staging_of_dead_processes_is_swept(done, capsys):
 
 def test_unchanged_inputs_skip_every_step(done, capsys):
     assert set(plan(done, capsys)) == {"skip"}
-    before = digest(done / "store"), {p.name: p.read_bytes() for p in (done / "selections").iterdir()}
+    before = tree_digest(done / "store"), {p.name: p.read_bytes() for p in (done / "selections").iterdir()}
     first = sorted((done.parent / "data" / "edges").rglob("*.parquet"))[0]
     os.utime(first)  # a new modification time alone: the fingerprints compare content
     assert set(plan(done, capsys)) == {"skip"}
     assert main(["run", str(done / "job.toml"), "--quiet"]) == 0
-    assert (digest(done / "store"), {p.name: p.read_bytes() for p in (done / "selections").iterdir()}) == before
+    assert (tree_digest(done / "store"), {p.name: p.read_bytes() for p in (done / "selections").iterdir()}) == before
 
 
 def test_rewritten_partition_reruns_from_ingest(done, tmp_path, capsys):
@@ -179,7 +172,7 @@ def test_full_disk_exits_3_and_keeps_the_store(scenario, small_disk, capsys):
     store = small_disk / "store"
     assert _ingest(root / "data", store) == 0
     need = sum(p.stat().st_size for p in store.rglob("*") if p.is_file())
-    before = digest(store)
+    before = tree_digest(store)
     faults = set()
     for share in (0.0, 0.2, 0.4, 0.6, 0.8, 0.95):  # room for that share of a second graph stage
         stat = os.statvfs(small_disk)
@@ -192,7 +185,7 @@ def test_full_disk_exits_3_and_keeps_the_store(scenario, small_disk, capsys):
         assert err.count("\n") == 1 and "Traceback" not in err
         assert "bigprune ingest: error: no space left on device" in err
         faults.add(err.split(" writing ")[1].split(";")[0] if " writing " in err else "unnamed")
-        assert digest(store) == before  # no staging, lock or temporary file left behind
+        assert tree_digest(store) == before  # no staging, lock or temporary file left behind
         ballast.unlink()
     assert len(faults) >= 3, faults  # the fault landed in different files
     assert _ingest(root / "data", store) == 0
@@ -203,7 +196,7 @@ def test_full_disk_simulated(scenario, tmp_path, capsys, monkeypatch):
     root, _ = scenario
     store = tmp_path / "store"
     assert _ingest(root / "data", store) == 0
-    before = digest(store)
+    before = tree_digest(store)
     calls = []
     real = os.posix_fallocate
 
@@ -218,7 +211,7 @@ def test_full_disk_simulated(scenario, tmp_path, capsys, monkeypatch):
     assert _ingest(root / "data", store) == 3
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and "no space left on device writing " in err
-    assert digest(store) == before
+    assert tree_digest(store) == before
     monkeypatch.undo()
     assert main(["status", "--store", str(store)]) == 0
     assert json.loads((store / "manifest.json").read_text())["stages"]["graph"]["info"]["nodes"] == 2000
@@ -230,7 +223,6 @@ def test_orphan_stage_dir_is_swept_under_the_lock(tmp_path):
     from conftest import random_symmetric, write_graph_store
 
     import numpy as np
-    from bigprune.store import Store
 
     rng = np.random.default_rng(0)
     store = write_graph_store(tmp_path / "s", random_symmetric(20, 0.3, rng), np.ones((20, 2)),
