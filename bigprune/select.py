@@ -11,6 +11,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import InputError
+from .ids import lookup, read_id_file
 from .memory import FIXED_OVERHEAD, parse_size, peak_rss, require, rows_per_chunk
 from .report import CAUTION, changes, class_counts, coverage, diagnostics
 from .runtime import set_threads
@@ -239,29 +240,13 @@ def _check_hop(hop, hops):
     return int(hop)
 
 
-def _dense(store, wanted):
-    """Dense indices of the user's ids ``wanted`` (a pyarrow array), -1 where unknown."""
-    import pyarrow.compute as pc
-
-    ids = store.table("graph", "node_id").column("node_id").combine_chunks()
-    found = pc.index_in(wanted, value_set=ids)
-    return found.fill_null(-1).to_numpy(zero_copy_only=False).astype(np.int64)
-
-
-def _id_type(store):
-    import pyarrow.parquet as pq
-
-    return pq.read_schema(store.stage_dir("graph") / "node_id.parquet").field("node_id").type
-
-
 def _initial_nodes(store, initial, pool, k):
     """Dense indices of the user's ``initial`` ids, which must be distinct pool nodes."""
     if initial is None:
         return np.zeros(0, dtype=np.int64)
     import pyarrow as pa
 
-    wanted = pa.array(list(initial), type=_id_type(store))
-    dense = _dense(store, wanted)
+    wanted, dense = lookup(store, pa.array(list(initial)), "initial=", "(ids given in Python)")
     outside = (dense < 0) | ~np.isin(dense, pool)
     if outside.any():
         raise InputError(f"--initial: node {wanted[int(np.argmax(outside))].as_py()} is not in the "
@@ -275,26 +260,7 @@ def _initial_nodes(store, initial, pool, k):
 def _node_file(store, path, option):
     """The ``node_id`` column of the Parquet file ``path`` as the store's id type, and the
     dense index of each id (-1 where the graph has no such node)."""
-    import pyarrow as pa
-    import pyarrow.parquet as pq
-
-    if not Path(path).is_file():
-        raise InputError(f"{option} {path}: no such file")
-    try:
-        schema = pq.read_schema(path)
-    except (pa.ArrowException, OSError):
-        raise InputError(f"{option} {path}: not a readable Parquet file") from None
-    if "node_id" not in schema.names:
-        raise InputError(f"{option} {path}: no node_id column; give a Parquet file with one "
-                         f"(a bigprune selection has it)")
-    ids_type = _id_type(store)
-    column = pq.read_table(path, columns=["node_id"]).column("node_id").combine_chunks()
-    try:
-        wanted = column.cast(ids_type)
-    except pa.ArrowException:
-        raise InputError(f"{option} {path}: node_id holds {column.type} values but the store's ids "
-                         f"are {ids_type}; write the ids as {ids_type}") from None
-    return wanted, _dense(store, wanted)
+    return lookup(store, read_id_file(path, option).column("node_id"), option, path)
 
 
 def _included(store, path, whole_pool, pool, exclude, k):

@@ -22,6 +22,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import BudgetError, InputError
+from .ids import lookup, read_id_file
 from .fingerprint import key
 from .memory import DEFAULT_BUDGET, FIXED_OVERHEAD, chunk_ranges, format_size, parse_size, \
     rows_per_chunk
@@ -237,23 +238,10 @@ def _sizes(budgets, pool):
 
 def _answers(store, path, pool):
     """Dense indices (sorted) and labels of the held-out nodes in the answers file."""
-    import pyarrow.compute as pc
-    import pyarrow.parquet as pq
-
-    try:
-        table = pq.read_table(path)
-    except (OSError, ValueError) as exc:
-        raise InputError(f"--answers {path}: not a readable Parquet file ({exc})") from None
-    missing = [c for c in ("node_id", "label") if c not in table.column_names]
-    if missing:
-        raise InputError(f"--answers {path}: no column {missing[0]!r}; it needs node_id and label")
+    table = read_id_file(path, "--answers", ("node_id", "label"))
     if table.num_rows == 0 or table.column("label").null_count:
         raise InputError(f"--answers {path}: every row needs a label, and there must be at least one")
-    ids = store.table("graph", "node_id").column("node_id").combine_chunks()
-    wanted = table.column("node_id").combine_chunks()
-    if wanted.type != ids.type:
-        raise InputError(f"--answers {path}: node_id is {wanted.type}, the graph's ids are {ids.type}")
-    dense = pc.index_in(wanted, value_set=ids).fill_null(-1).to_numpy(zero_copy_only=False)
+    wanted, dense = lookup(store, table.column("node_id"), "--answers", path)
     bad = np.flatnonzero((dense < 0) | np.isin(dense, pool))
     if len(bad):
         where = "is not in the graph" if dense[bad[0]] < 0 else "is in the training pool"

@@ -452,7 +452,8 @@ def test_constraint_errors(skewed, tmp_path):
                                          f"a node cannot be both"),
         (dict(include=tmp_path / "none.parquet"), f"--include {tmp_path / 'none.parquet'}: no such file"),
         (dict(include=tmp_path / "junk.parquet"),
-         f"--include {tmp_path / 'junk.parquet'}: not a readable Parquet file"),
+         f"--include {tmp_path / 'junk.parquet'}: not a readable Parquet file (Parquet magic bytes not "
+         f"found in footer. Either the file is corrupted or this is not a parquet file.)"),
         (dict(exclude=tmp_path / "noid.parquet"),
          f"--exclude {tmp_path / 'noid.parquet'}: no node_id column; give a Parquet file with one "
          f"(a bigprune selection has it)"),
