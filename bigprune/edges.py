@@ -1,4 +1,4 @@
-"""Streaming the edge partitions through DuckDB: id mapping, checks, and the CSR build."""
+"""Streaming the edge partitions: DuckDB id mapping, checks, and the CSR build."""
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute  # noqa: F401  (pa.compute)
@@ -47,44 +47,57 @@ class EdgeFiles:
         return f"read_parquet([{names}], filename = true, file_row_number = true)"
 
 
-def build_csr(con, edges, node_count, index_dtype, writer, batch_rows, edge_bytes, drop_unknown=False):
-    """Map ids to rows, symmetrise, drop loops, merge repeats; write indptr/indices(/weight).
+def duckdb_rows(con, edges, index_dtype, batch_rows, drop_unknown=False):
+    """Yield ``(u, v, w, dropped)`` per batch of the partitions, ids mapped by DuckDB.
 
     ``con`` is a DuckDB connection holding the id map as table ``idmap(id, idx)``. Edge rows
-    naming a node missing from the node table are an error, or dropped and counted with
-    ``drop_unknown``. ``edge_bytes`` bounds what the build holds: when the edge rows and the
-    whole adjacency fit it they stay in memory, else they are spilled and built in row blocks.
-    Returns a dict of counts for the manifest.
+    naming a node missing from the node table are an error, or dropped and counted (``dropped``)
+    with ``drop_unknown``; a weight that is not finite and > 0 is an error.
     """
     weight_sql = "e.weight::FLOAT AS w" if edges.weighted else "NULL::FLOAT AS w"
     query = (f"SELECT s.idx AS u, d.idx AS v, {weight_sql} FROM {edges.sql_source()} AS e "
              "LEFT JOIN idmap AS s ON e.src = s.id LEFT JOIN idmap AS d ON e.dst = d.id")
+    no_weight = np.empty(0, dtype=np.float32)
+    reader = con.sql(query).to_arrow_reader(batch_rows)
+    for batch in reader:
+        dropped = 0
+        if batch.column(0).null_count or batch.column(1).null_count:
+            if not drop_unknown:
+                reader.close()
+                explain_unmapped(con, edges)
+            known = pa.compute.and_(batch.column(0).is_valid(), batch.column(1).is_valid())
+            dropped = len(batch) - pa.compute.sum(known).as_py()
+            batch = batch.filter(known)
+        u = batch.column(0).to_numpy().astype(index_dtype, copy=False)
+        v = batch.column(1).to_numpy().astype(index_dtype, copy=False)
+        w = no_weight
+        if edges.weighted:
+            w = batch.column(2).to_numpy(zero_copy_only=False)
+            if not np.all((w > 0) & (w < np.inf)):  # also false for NaN and null
+                reader.close()
+                explain_weight(edges)
+        yield u, v, w, dropped
+
+
+def build_csr(batches, edges, node_count, index_dtype, writer, edge_bytes):
+    """Symmetrise, drop loops, merge repeats; write indptr/indices(/weight).
+
+    ``batches`` yields ``(u, v, w, dropped)``: dense rows (``index_dtype``), float32 weights
+    (empty when unweighted) and the count of unknown-id rows dropped from the batch
+    (``duckdb_rows`` or ``idrows.hashed_rows``). ``edge_bytes`` bounds what the build holds:
+    when the edge rows and the whole adjacency fit it they stay in memory, else they are
+    spilled and built in row blocks. Returns a dict of counts for the manifest.
+    """
     in_memory = edges.rows * in_memory_bytes_per_row(index_dtype, edges.weighted) <= edge_bytes
     scratch = writer.scratch()
     rows = EdgeRows(edges.rows, index_dtype, edges.weighted, None if in_memory else scratch / "edges.bin")
     counts = np.zeros(node_count, dtype=np.int64)
     loops, dropped = 0, 0
-    no_weight = np.empty(0, dtype=np.float32)
-    reader = con.sql(query).to_arrow_reader(batch_rows)
     with progress(total=edges.rows, desc="ingest edges", unit="edge") as bar:
-        for batch in reader:
-            if batch.column(0).null_count or batch.column(1).null_count:
-                if not drop_unknown:
-                    reader.close()
-                    _explain_unmapped(con, edges)
-                known = pa.compute.and_(batch.column(0).is_valid(), batch.column(1).is_valid())
-                dropped += len(batch) - pa.compute.sum(known).as_py()
-                batch = batch.filter(known)
-            u = batch.column(0).to_numpy().astype(index_dtype, copy=False)
-            v = batch.column(1).to_numpy().astype(index_dtype, copy=False)
-            w = no_weight
-            if edges.weighted:
-                w = batch.column(2).to_numpy(zero_copy_only=False)
-                if not np.all((w > 0) & (w < np.inf)):  # also false for NaN and null
-                    reader.close()
-                    _explain_weight(edges)
+        for u, v, w, batch_dropped in batches:
             rows.append(u, v, w)
             loops += count_endpoints(u, v, counts)
+            dropped += batch_dropped
             bar.update(len(u))
     filled = rows.count
     if filled == loops:
@@ -100,7 +113,7 @@ def build_csr(con, edges, node_count, index_dtype, writer, batch_rows, edge_byte
             "row_blocks": int(blocks)}
 
 
-def _explain_unmapped(con, edges):
+def explain_unmapped(con, edges):
     """Find the first edge row whose src or dst is null or not in the node table, and say so."""
     row = con.execute(
         f"SELECT e.filename, e.file_row_number, e.src, e.dst, s.idx IS NULL AS bad_src "
@@ -115,7 +128,7 @@ def _explain_unmapped(con, edges):
                      "which is not in --nodes")
 
 
-def _explain_weight(edges):
+def explain_weight(edges):
     """Find the first weight that is not a finite positive float32 and say where it is.
 
     Scanned with pyarrow, not DuckDB: DuckDB prunes row groups by their min/max statistics,

@@ -6,8 +6,9 @@ import pyarrow as pa
 
 from .arrayfile import NpyFile
 from .errors import BudgetError
-from .edges import EdgeFiles, build_csr, register_ids, scan_error
+from .edges import EdgeFiles, build_csr, duckdb_rows, explain_unmapped, explain_weight, register_ids, scan_error
 from .fingerprint import fingerprints
+from .idrows import IdTable, hashable, hashed_rows, table_bytes
 from .memory import DEFAULT_BUDGET, FIXED_OVERHEAD, MIB, format_size, parse_size, peak_rss, working_memory
 from .nodetable import NodeTable, copy_npy_features
 from .runtime import set_threads
@@ -62,7 +63,9 @@ def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, thr
     partitions = EdgeFiles(edge_files(edges), table.id_kind)
     n = table.rows
     index_dtype = np.int32 if n < 2**31 - 1 else np.int64
-    duck_bytes, edge_bytes, chunk_bytes = _plan(budget, n, partitions.rows)
+    hash_bytes = table_bytes(n) if hashable(table.file.schema_arrow.field("node_id").type, partitions.files,
+                                            index_dtype) else 0
+    duck_bytes, edge_bytes, chunk_bytes = _plan(budget, n, partitions.rows, hash_bytes)
     table.load()
     inputs = {"edges": fingerprints(partitions.files), "nodes": fingerprints([nodes])}
     if features is not None:
@@ -80,14 +83,27 @@ def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, thr
         writer.save("split", table.split)
         writer.save("label", table.label)
         pa.default_memory_pool().release_unused()  # Arrow's pool keeps what the table reads freed
-        con = _duckdb(writer.scratch(), duck_bytes, threads)
-        register_ids(con, table.ids, index_dtype)
+        con = None
+        if duck_bytes:
+            con = _duckdb(writer.scratch(), duck_bytes, threads)
+            register_ids(con, table.ids, index_dtype)
+            batches = duckdb_rows(con, partitions, index_dtype, BATCH_ROWS, drop_unknown)
+        else:
+            def unmapped():  # DuckDB only to locate the first bad row for the message
+                con = _duckdb(writer.scratch(), DUCKDB_MIN, threads)
+                register_ids(con, table.ids, index_dtype)
+                explain_unmapped(con, partitions)
+
+            ids = IdTable(table.ids.to_numpy())
+            batches = hashed_rows(partitions, ids, BATCH_ROWS, drop_unknown, unmapped,
+                                  lambda: explain_weight(partitions))
         try:
-            counts = build_csr(con, partitions, n, index_dtype, writer, batch_rows=1 << 20,
-                               edge_bytes=edge_bytes, drop_unknown=drop_unknown)
-        except (duckdb.Error, OSError) as exc:  # DuckDB errors met mid-stream arrive as Arrow's OSError
+            counts = build_csr(batches, partitions, n, index_dtype, writer, edge_bytes=edge_bytes)
+        # DuckDB errors met mid-stream arrive as Arrow's OSError; pyarrow's own reads raise ArrowException
+        except (duckdb.Error, OSError, pa.ArrowException) as exc:
             raise scan_error(exc, partitions, budget) from None
-        con.close()
+        if con is not None:
+            con.close()
         summary = {"nodes": n, "feature_dim": dim, "weighted": bool(partitions.weighted),
                    "edge_files": len(partitions.files), **counts,
                    "memory_budget": format_size(budget)}
@@ -105,13 +121,25 @@ NODE_BYTES = 80
 DUCKDB_NODE_BYTES = 64
 DUCKDB_MIN = 256 * MIB
 DUCKDB_SLACK = 160 * MIB
+BATCH_ROWS = 1 << 20
+# pyarrow decodes a whole row group before slicing it into batches, and the id table's build
+# holds a copy of the ids: room for both on the hash path (measured: 20M nodes, 5M-row groups).
+HASH_SLACK = 256 * MIB
 
 
-def _plan(budget, nodes, edge_rows):
-    """Split the budget: DuckDB's limit, the edge build's share, the feature copy's chunk."""
+def _plan(budget, nodes, edge_rows, hash_bytes=0):
+    """Split the budget: DuckDB's limit, the edge build's share, the feature copy's chunk.
+
+    With ``hash_bytes`` (the id hash table of integer ids) the ids are mapped without DuckDB,
+    whose limit is then 0, as long as the build keeps its share; else DuckDB maps them.
+    """
     spare = working_memory(budget, "ingest")
+    if hash_bytes:
+        edge_bytes = spare - hash_bytes - HASH_SLACK - nodes * NODE_BYTES - BATCH_ROWS * 48
+        if edge_bytes >= 64 * MIB:
+            return 0, edge_bytes, max(16 * MIB, edge_bytes // 4)
     duck = min(max(DUCKDB_MIN, nodes * DUCKDB_NODE_BYTES), max(DUCKDB_MIN, spare // 3))
-    held = duck + DUCKDB_SLACK + nodes * NODE_BYTES + (1 << 20) * 48  # 48 B per row of Arrow batches
+    held = duck + DUCKDB_SLACK + nodes * NODE_BYTES + BATCH_ROWS * 48  # 48 B per row of Arrow batches
     edge_bytes = spare - held
     if edge_bytes < 64 * MIB:
         need = held + 64 * MIB + FIXED_OVERHEAD
