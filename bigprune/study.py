@@ -381,6 +381,7 @@ def _run_cell(cell):
     result = {}
     if cell["rule"] == FULL:
         rows = ctx["pool"]
+        result["fill_picks"] = 0
     else:
         report = select(store, cell["rule"], int(cell["k"]), targets=ctx["targets"],
                         seed=cell["seed"], memory_budget=ctx["memory"], threads=ctx["threads"])
@@ -388,6 +389,7 @@ def _run_cell(cell):
         result["coverage"] = report["coverage"]
         result["diagnostics"] = report["diagnostics"]
         result["classes"] = report["classes"]
+        result["fill_picks"] = report.get("greedy", {}).get("filled", 0)
     label = store.load("graph", "label", mmap=False)[rows]
     x = _gather(ctx["embedding"], rows, ctx["window"])
     # the proxy holds a float64 copy of each chunk and three (chunk, classes) temporaries
@@ -462,7 +464,9 @@ def _row(rule, budget, repeat, result):
             "macro_f1": result["macro_f1"], "per_class": result["per_class"],
             "seconds": result["seconds"],
             "coverage_radius": result.get("coverage", {}).get("radius", math.nan),
-            "mean_degree": result.get("diagnostics", {}).get("selected", {}).get("degree", math.nan)}
+            "mean_degree": result.get("diagnostics", {}).get("selected", {}).get("degree", math.nan),
+            # kcenter picks made by its farthest-first fill once every target was served
+            "fill_picks": result.get("fill_picks", math.nan)}
 
 
 def _diagnostics(setup, done):

@@ -49,7 +49,7 @@ def _columns(rows, classes):
     table = {name: [r[name] for r in rows] for name in names}
     for c in classes:
         table[f"acc_class_{c}"] = [r["per_class"].get(str(c), math.nan) for r in rows]
-    for name in ("seconds", "coverage_radius", "mean_degree"):
+    for name in ("seconds", "coverage_radius", "mean_degree", "fill_picks"):
         table[name] = [r[name] for r in rows]
     return table
 
@@ -172,6 +172,12 @@ def report_blocks(rows, summary, classes, images):
         best = rec["rules"][rec["best"]]
         lines.append(f"Fewest nodes: {rec['best']} reaches it with {best['training_nodes']:,} "
                      f"training nodes (budget {best['budget']:g}, accuracy {best['accuracy']:.4f}).")
+        fill = [r["fill_picks"] for r in rows if r["rule"] == rec["best"]
+                and r["training_nodes"] == best["training_nodes"] and r["fill_picks"] == r["fill_picks"]]
+        if fill and max(fill) > 0:
+            lines.append(f"Of those, {int(np.mean(fill)):,} came from the greedy's farthest-first fill, "
+                         "chosen after every target was already served: that part of the subset does "
+                         "not follow the targets.")
     blocks.append(("p", " ".join(lines)))
     blocks.append(("table", ["rule", "smallest enough budget", "training nodes", "mean accuracy"],
                    [[rule, "none" if v is None else f"{v['budget']:g}",

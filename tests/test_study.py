@@ -246,3 +246,23 @@ def test_job_file_study_table(tmp_path):
                                        '[study]\nout = "st"\nbudgets = 0.1\n')
     with pytest.raises(InputError, match=r"\[study\]: budgets = 0.1 should be a list of numbers"):
         load_job(tmp_path / "job.toml")
+
+
+def test_kcenter_fill_picks_are_counted(store, done):
+    """Once every target's nearest pool node is chosen, kcenter's further picks are its
+    farthest-first fill: the table counts them, k minus the distinct nearest pool nodes."""
+    from scipy.spatial.distance import cdist
+
+    from bigprune.propagate import embedding
+
+    out, _ = done
+    x = np.asarray(embedding(store), dtype=np.float64)
+    split = store.load("graph", "split")
+    pool, targets = np.flatnonzero(split == 1), np.flatnonzero(split == 3)
+    # reference: scipy's exact distances; each target's nearest pool node must be chosen
+    distinct = len(np.unique(np.argmin(cdist(x[targets], x[pool]), axis=1)))
+    t = table(out)
+    for rule, k, fill in zip(t["rule"], t["training_nodes"], t["fill_picks"]):
+        if rule == "kcenter" and k < len(pool):
+            assert fill == max(0, k - distinct)
+    assert max(f for r, k, f in zip(t["rule"], t["training_nodes"], t["fill_picks"]) if r == "kcenter" and k < 600) > 0
