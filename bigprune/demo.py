@@ -105,6 +105,10 @@ def _study_lines(summary):
             lines.append(f"{rule:<14}{pick['budget']:>10g}{pick['training_nodes']:>9,}{pick['accuracy']:>10.3f}")
     if rec["best"]:
         lines.append(f"fewest training nodes: {rec['best']}")
+        fill = rec["rules"][rec["best"]]["fill_picks"]
+        if fill:
+            lines.append(f"  ({fill:,} of those nodes came from kcenter's farthest-first fill, chosen after "
+                         "every target was served; see the study report)")
     return "\n".join(lines)
 
 

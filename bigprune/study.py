@@ -142,7 +142,10 @@ def recommend(rows, tolerance):
             continue
         at = sizes.index(int(enough))
         budget = next(r["budget"] for r in mine if r["training_nodes"] == sizes[at])
-        per_rule[rule] = {"budget": budget, "training_nodes": sizes[at], "accuracy": means[at]}
+        fills = [r["fill_picks"] for r in mine if r["training_nodes"] == sizes[at]
+                 and not math.isnan(r.get("fill_picks", math.nan))]  # NaN: not recorded
+        per_rule[rule] = {"budget": budget, "training_nodes": sizes[at], "accuracy": means[at],
+                          "fill_picks": int(round(np.mean(fills))) if fills else 0}
     reached = [(v["training_nodes"], -v["accuracy"], rule) for rule, v in per_rule.items() if v]
     best = min(reached)[2] if reached else None
     return {"full_accuracy": full, "pool": pool, "tolerance": tolerance, "rules": per_rule,

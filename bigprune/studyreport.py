@@ -172,10 +172,8 @@ def report_blocks(rows, summary, classes, images):
         best = rec["rules"][rec["best"]]
         lines.append(f"Fewest nodes: {rec['best']} reaches it with {best['training_nodes']:,} "
                      f"training nodes (budget {best['budget']:g}, accuracy {best['accuracy']:.4f}).")
-        fill = [r["fill_picks"] for r in rows if r["rule"] == rec["best"]
-                and r["training_nodes"] == best["training_nodes"] and r["fill_picks"] == r["fill_picks"]]
-        if fill and max(fill) > 0:
-            lines.append(f"Of those, {int(np.mean(fill)):,} came from the greedy's farthest-first fill, "
+        if best["fill_picks"]:
+            lines.append(f"Of those, {best['fill_picks']:,} came from the greedy's farthest-first fill, "
                          "chosen after every target was already served: that part of the subset does "
                          "not follow the targets.")
     blocks.append(("p", " ".join(lines)))
