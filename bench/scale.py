@@ -8,14 +8,18 @@ For each size (edge rows written), generates the marketplace scenario with
     ingest     Parquet partitions + node table -> store
     propagate  2 hops (SGC, d = 64) and PageRank
     select     kcenter, 10% of the training pool, targets the test split
+    baseline   what a user would otherwise write: the whole graph as a scipy.sparse matrix Â and
+               the features in memory, the same hops as ``A @ X`` products (skipped, with its
+               estimated peak, when that estimate passes ``--baseline-cap``)
 
 Each child's wall time, CPU time and peak RSS come from ``os.wait4`` (its own rusage, not the
 maximum over all children); the stage's own ``seconds`` from its JSON summary is shown beside it
 (the difference is interpreter start and imports). The load average is sampled every 2 s while a
 stage runs. Afterwards it prints a table per size and stage, the log-log slope of time against
 edges per stage (least squares over all sizes; target <= 1.1) and of peak RSS against edges
-(target: flat, and at or under the budget), with the ratios between consecutive sizes, and
-appends a dated section to bench/RESULTS.md (``--results ''`` to skip).
+(target: flat, and at or under the budget), with the ratios between consecutive sizes, then per
+size the baseline's hop time and peak RSS beside bigprune's (the hop times from the propagate
+stage's record), and appends a dated section to bench/RESULTS.md (``--results ''`` to skip).
 
 A stage that fails or passes ``--stage-timeout`` is recorded with its exit line, and the later
 stages of that size are skipped.
@@ -48,6 +52,10 @@ from pathlib import Path  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[1]
 STAGES = ("ingest", "propagate", "select")
+# The baseline's bytes: Â as CSR (float32 values, int32 columns, self loops added; scipy holds A
+# beside it while it adds them), and X_k, X_{k+1} in float32.
+BASELINE_ENTRY_BYTES = 2 * 8
+BASELINE_VALUE_BYTES = 2 * 4
 DEFAULT_SIZES = "1M,10M"
 LARGE_SIZES = "100M,200M"
 _HEAD = (f"{'edges':>13} {'stage':<10} {'wall s':>9} {'stage s':>9} {'cpu s':>9} "
@@ -74,10 +82,15 @@ def main():
                         help="keep generated inputs here and reuse them on later runs (same seed, dim)")
     parser.add_argument("--results", default=str(ROOT / "bench" / "RESULTS.md"),
                         help="Markdown file to append to ('' to skip)")
+    parser.add_argument("--baseline-cap", default="12GiB",
+                        help="skip the scipy baseline when its estimated peak passes this (default %(default)s)")
     parser.add_argument("--generate", nargs=2, metavar=("DIR", "EDGES"), help=argparse.SUPPRESS)
+    parser.add_argument("--baseline-child", metavar="STORE", help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.generate:
         return _generate_child(Path(args.generate[0]), int(args.generate[1]), args)
+    if args.baseline_child:
+        return _baseline_child(Path(args.baseline_child), args.hops)
     sizes = [_parse_count(s) for s in args.sizes.split(",") if s.strip()]
     if args.large:
         sizes += [_parse_count(s) for s in LARGE_SIZES.split(",") if _parse_count(s) not in sizes]
@@ -112,6 +125,44 @@ def _generate_child(directory, edges, args):
     print(json.dumps(out["counts"]))
 
 
+def _baseline_child(store, hops):
+    """The in-memory baseline: Â = D^-1/2 (A+I) D^-1/2 in scipy.sparse, ``hops`` products."""
+    import numpy as np
+    import scipy.sparse as sp
+
+    graph = store / json.loads((store / "manifest.json").read_text())["stages"]["graph"]["dir"]
+    indptr, indices = np.load(graph / "indptr.npy"), np.load(graph / "indices.npy")
+    n = indptr.shape[0] - 1
+    adj = sp.csr_matrix((np.ones(indices.shape[0], dtype=np.float32), indices, indptr), shape=(n, n))
+    del indices
+    hat = (adj + sp.identity(n, dtype=np.float32, format="csr")).tocsr()
+    del adj
+    scale = (1.0 / np.sqrt(np.diff(hat.indptr).astype(np.float64))).astype(np.float32)
+    hat.data *= scale[hat.indices]
+    hat.data *= np.repeat(scale, np.diff(hat.indptr))
+    x = np.load(graph / "features.npy")
+    seconds = []
+    for _ in range(hops):
+        tic = time.perf_counter()
+        x = hat @ x
+        seconds.append(round(time.perf_counter() - tic, 3))
+    print(json.dumps({"seconds": sum(seconds), "hop_seconds": seconds}))
+
+
+def _baseline_estimate(store):
+    """The baseline's estimated peak bytes, from the graph stage's array headers."""
+    graph = store / json.loads((store / "manifest.json").read_text())["stages"]["graph"]["dir"]
+    n, d = _npy_shape(graph / "features.npy")
+    nnz = _npy_shape(graph / "indices.npy")[0]
+    return BASELINE_ENTRY_BYTES * (nnz + n) + BASELINE_VALUE_BYTES * n * d + 8 * n
+
+
+def _npy_shape(path):
+    with open(path, "rb") as fh:
+        head = fh.read(256).decode("latin1")
+    return tuple(int(v) for v in head.split("'shape': (", 1)[1].split(")", 1)[0].split(",") if v.strip())
+
+
 def _ladder_step(tmp, edges, args):
     data, store = tmp / "data", tmp / "store"
     if args.data_cache:
@@ -130,6 +181,7 @@ def _ladder_step(tmp, edges, args):
         "select": py + ["-m", "bigprune", "select", "--store", str(store), "--strategy", "kcenter",
                         "--budget", args.select_budget, "--targets", "test",
                         "--out", str(tmp / "picks.parquet")] + common,
+        "baseline": py + [__file__, "--baseline-child", str(store), "--hops", str(args.hops)],
     }
     rows, failed = [], None
     for stage, cmd in commands.items():
@@ -142,6 +194,14 @@ def _ladder_step(tmp, edges, args):
         if failed:
             rows.append({"edges": edges, "stage": stage, "status": f"skipped ({failed} failed)"})
             continue
+        if stage == "baseline":
+            estimate = _baseline_estimate(store)
+            if estimate > _budget_bytes(args.baseline_cap):
+                row = {"edges": edges, "stage": stage, "estimate": estimate,
+                       "status": f"skipped: estimated peak {estimate / 2**30:.1f} GiB > --baseline-cap"}
+                rows.append(row)
+                print(_line(row), flush=True)
+                continue
         row = {"edges": edges, "stage": stage, **_measure(cmd, args.stage_timeout)}
         if stage == "generate" and row["status"] == "ok":
             row["counts"] = json.loads(row.pop("stdout").strip().splitlines()[-1])
@@ -150,6 +210,12 @@ def _ladder_step(tmp, edges, args):
                 (data / "counts.json").write_text(json.dumps(row["counts"]))
         elif row["status"] == "ok":
             row["summary"] = _last_json(row.pop("stdout"))
+            if stage == "propagate":
+                entry = json.loads((store / "manifest.json").read_text())["stages"]["propagate"]
+                row["hop_seconds"] = entry["info"]["hop_seconds"]
+                row["way"] = entry["info"]["way"]
+            if stage == "baseline":
+                row["estimate"] = _baseline_estimate(store)
         if stage == "ingest" and row["status"] == "ok" and not args.data_cache:
             shutil.rmtree(data)  # the store holds all later stages need; free the disk
         if row["status"] != "ok":
@@ -269,8 +335,34 @@ def _summary(rows, args, command, started):
                          f"wall x{b['wall'] / a['wall']:.2f}, stage s x"
                          f"{b['summary']['seconds'] / a['summary']['seconds']:.2f}, cpu x{b['cpu'] / a['cpu']:.2f}, "
                          f"peak RSS x{b['peak_rss'] / a['peak_rss']:.2f}")
+    lines += _baseline_lines(rows, budget, args.memory_budget)
     lines += ["```", ""]
     return "\n".join(lines)
+
+
+def _baseline_lines(rows, budget, budget_text):
+    """Per size: the scipy baseline's hops and peak RSS beside bigprune's propagate stage."""
+    lines = ["", f"baseline (scipy.sparse Â @ X, graph and features whole in memory) against bigprune "
+                 f"propagate, --memory-budget {budget_text}:"]
+    for edges in sorted({r["edges"] for r in rows}):
+        ours = next((r for r in rows if r["edges"] == edges and r["stage"] == "propagate"), None)
+        theirs = next((r for r in rows if r["edges"] == edges and r["stage"] == "baseline"), None)
+        if ours is None or theirs is None or "hop_seconds" not in ours:
+            continue
+        hops = sum(ours["hop_seconds"])
+        line = (f"  {edges:>13,} edges: bigprune hops {hops:.1f} s ({ours['way']}), stage peak "
+                f"{ours['peak_rss'] / 2**30:.2f} GiB; ")
+        if theirs["status"] == "ok":
+            peak = theirs["peak_rss"]
+            line += (f"baseline hops {theirs['summary']['seconds']:.1f} s, peak {peak / 2**30:.2f} GiB "
+                     f"({'within' if peak <= budget else 'OVER'} the budget); speed ratio "
+                     f"{theirs['summary']['seconds'] / hops:.2f}x, peak RSS ratio "
+                     f"{ours['peak_rss'] / peak:.2f}")
+        else:
+            line += (f"baseline {theirs['status']} (estimate "
+                     f"{'within' if theirs.get('estimate', 0) <= budget else 'over'} the budget)")
+        lines.append(line)
+    return lines
 
 
 def _budget_bytes(text):
