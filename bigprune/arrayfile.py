@@ -6,8 +6,11 @@ page cache is not the process's). So every out-of-core stage reads and writes th
 its RSS is just the buffers it planned.
 """
 import os
+from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
+
+from .memory import chunk_ranges
 
 # Rows converted between storage and compute dtypes this many bytes at a time (float16 <-> float32),
 # so that a conversion never needs a second full-size copy of a window.
@@ -47,18 +50,34 @@ class NpyFile:
             os.close(self._fd)
             self._fd = None
 
-    def read_into(self, start, out):
-        """Fill ``out`` (C-contiguous, any float or int dtype) with rows ``start..start+len(out)``."""
+    def read_into(self, start, out, piece_bytes=PIECE_BYTES):
+        """Fill ``out`` (C-contiguous, any float or int dtype) with rows ``start..start+len(out)``;
+        a cast goes through a buffer of about ``piece_bytes``."""
         count = out.shape[0]
         if out.dtype == self.dtype:
             self._pread(out, start)
             return out
-        rows = max(1, PIECE_BYTES // max(1, self.row_items * self.dtype.itemsize))
+        rows = max(1, piece_bytes // max(1, self.row_items * self.dtype.itemsize))
         piece = np.empty((min(rows, count),) + self.shape[1:], dtype=self.dtype)
         for lo in range(0, count, rows):
             hi = min(count, lo + rows)
             self._pread(piece[:hi - lo], start + lo)
             out[lo:hi] = piece[:hi - lo]
+        return out
+
+    def read_parallel(self, start, out, threads):
+        """:meth:`read_into` split into ``threads`` runs of rows read at once.
+
+        The reads (and any casts) release the GIL, so a large window fills in about 1/threads of
+        the time: the copy out of the page cache and the first touch of ``out``'s pages are the
+        cost, and each thread pays for its own part.
+        """
+        parts = chunk_ranges(out.shape[0], -(-out.shape[0] // max(1, int(threads))))
+        if len(parts) < 2:
+            return self.read_into(start, out)
+        piece = PIECE_BYTES // len(parts)  # the cast buffers together stay within one piece
+        with ThreadPoolExecutor(len(parts)) as pool:
+            list(pool.map(lambda ab: self.read_into(start + ab[0], out[ab[0]:ab[1]], piece), parts))
         return out
 
     def read(self, start, stop):

@@ -2,9 +2,10 @@
 
 Two ways to run, each a sequence of phases whose data must fit ``budget - FIXED_OVERHEAD``:
 
-- in memory: the CSR and ``X_k`` (float32) whole, one output block of rows at a time;
+- in memory: the CSR and ``X_k`` (float32) whole, two output blocks of rows (one
+  computed while the other is written);
   phases: scales (CSR, degree, scales, needed rows), hops (CSR, X_k, scales, needed rows,
-  one output block), PageRank (CSR, four float64 n-vectors, a mask);
+  two output blocks), PageRank (CSR, four float64 n-vectors, a mask);
 - grid (when that does not fit): ``indptr`` and the per-row vectors of PageRank whole, the
   entries streamed in chunks; hops hold one output window and one source window of rows
   (see :mod:`bigprune.grid`).
@@ -28,8 +29,8 @@ out_rows, src_rows : rows per output and source window; edge_rows : entries per 
 pagerank_whole : whether PageRank holds the CSR whole (always in memory; in the grid way when
 the CSR fits beside PageRank's vectors though the hops do not)."""
 
-# In memory, the output is written one block of rows at a time: at most this large, and at
-# least MIN_BLOCK_ROWS rows (or all of them).
+# In memory, the output is written one block of rows at a time: two blocks together at most
+# this large, and at least MIN_BLOCK_ROWS rows each (or all of them).
 BLOCK_BYTES = 64 * MIB
 MIN_BLOCK_ROWS = 1024
 # Grid: entries per chunk at most this many bytes; windows and chunks no smaller than these
@@ -87,7 +88,7 @@ def _in_memory_bytes(n, d, nnz, index_bytes, weighted, storage_bytes, restrict):
     wb, mask, convert, csr, small = _sizes(n, d, nnz, index_bytes, weighted, storage_bytes, restrict)
     hops_base = csr + 4 * n * d + min(PIECE_BYTES, n * convert) + 8 * n + mask + small
     phases = (csr + 16 * n + mask + small,
-              hops_base + (4 * d + convert) * min(n, MIN_BLOCK_ROWS),
+              hops_base + 2 * (4 * d + convert) * min(n, MIN_BLOCK_ROWS),
               csr + PAGERANK_ROW * n + small)
     return max(phases)
 
@@ -96,7 +97,7 @@ def _fit(n, d, nnz, index_bytes, weighted, storage_bytes, restrict, spare):
     """The plan for ``spare`` bytes of data, or None."""
     wb, mask, convert, csr, small = _sizes(n, d, nnz, index_bytes, weighted, storage_bytes, restrict)
     # In memory: X_k (float32) whole beside the CSR, then the output one block at a time.
-    block_row = 4 * d + convert
+    block_row = 2 * (4 * d + convert)  # two output blocks: one computed, one being written
     if _in_memory_bytes(n, d, nnz, index_bytes, weighted, storage_bytes, restrict) <= spare:
         hops_base = csr + 4 * n * d + min(PIECE_BYTES, n * convert) + 8 * n + mask + small
         rows = min(n, max(MIN_BLOCK_ROWS, min(BLOCK_BYTES, spare - hops_base) // block_row))
@@ -121,12 +122,12 @@ def _fit(n, d, nnz, index_bytes, weighted, storage_bytes, restrict, spare):
                     (spare - hop_rows) // (2 * edge_hop))  # half of the hop's room for windows
     edge_rows = max(MIN_EDGE_ROWS, min(edge_rows, max(nnz, 1)))
     room = spare - mask - small - edge_rows * edge_hop
-    for _ in range(2):  # the bucket offsets grow as windows shrink: make room for them once
+    for _ in range(64):  # the bucket offsets grow as windows shrink: make room for them
         out_rows = min(n, LOCAL_ROWS, max(MIN_WINDOW_ROWS, room * 3 // 5 // window_row))
         src_rows = min(n, LOCAL_ROWS, max(MIN_WINDOW_ROWS, (room - out_rows * window_row) // window_row))
         offsets = 8 * -(-n // out_rows) * (-(-n // src_rows) + 1)
         hop = mask + small + edge_rows * edge_hop + (out_rows + src_rows) * window_row + offsets
-        room -= offsets
+        room -= max(offsets, hop - spare)
         if hop <= spare:
             whole = csr + pagerank_rows <= spare
             return Plan(True, 0, out_rows, src_rows, edge_rows, whole)

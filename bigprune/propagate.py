@@ -12,6 +12,7 @@ the peak RSS is what the plan counted.
 """
 import operator
 import time
+from concurrent.futures import ThreadPoolExecutor
 from contextlib import nullcontext
 
 import numpy as np
@@ -140,25 +141,34 @@ def _memory_hops(graph, writer, n, d, hops, norm, storage, restrict, chosen, thr
     through = needed_through(graph, hops, indptr, chunks) if restrict else None
     weights_or_none = np.zeros(0, dtype=np.float32) if weights is None else weights
     bounds = np.empty(threads * TASKS_PER_THREAD + 1, dtype=np.int64)
-    block = np.empty((min(n, chosen.block_rows), d), dtype=np.float32)
+    # Two output blocks: the kernel fills one while a writer thread writes the other.
+    blocks = np.empty((2, min(n, chosen.block_rows), d), dtype=np.float32)
     x = np.empty((n, d), dtype=np.float32)
     hop_seconds = []
     for hop in range(1, hops + 1):
         tic = time.perf_counter()
         with NpyFile(_source_path(graph, writer, hop)) as source:
-            source.read_into(0, x)  # X_k as stored, cast to float32 piece by piece
+            source.read_parallel(0, x, threads)  # X_k as stored, cast to float32 piece by piece
         if right is not None:  # scale X_k's rows once rather than each gathered row
             scale_rows(x, right)
         target = _hop_file(writer, hop, n, d, storage)
-        with target, progress(total=n, desc=f"propagate hop {hop}/{hops}", unit="row") as bar:
-            for start, stop in chunk_ranges(n, chosen.block_rows):
+        with target, ThreadPoolExecutor(1) as writes, \
+                progress(total=n, desc=f"propagate hop {hop}/{hops}", unit="row") as bar:
+            pending = [None, None]
+            for i, (start, stop) in enumerate(chunk_ranges(n, chosen.block_rows)):
+                block = blocks[i % 2, :stop - start]
+                if pending[i % 2] is not None:
+                    pending[i % 2].result()  # its last write is done (and raised if it failed)
                 balanced_bounds(indptr, start, stop, bounds.shape[0] - 1, bounds)
                 smooth_rows(indptr, indices, weights_or_none, left, x,
-                            _or_empty(through), hop, bounds, block[:stop - start])
-                target.write(start, block[:stop - start])
+                            _or_empty(through), hop, bounds, block)
+                pending[i % 2] = writes.submit(target.write, start, block)
                 bar.update(stop - start)
+            for job in pending:
+                if job is not None:
+                    job.result()
         hop_seconds.append(round(time.perf_counter() - tic, 3))
-    del x, block, left, right
+    del x, blocks, left, right
     info = _finish(writer, hops, through, hop_seconds)
     del through  # committed: PageRank's phase does not hold it
     info.update(_pagerank_info(writer, indptr, chunks))

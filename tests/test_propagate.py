@@ -51,7 +51,8 @@ def _powers(adj, norm, features, hops):
 @pytest.mark.parametrize("block_rows", [1, 7, 10_000])
 def test_hops_match_scipy_products(tmp_path, monkeypatch, norm, weighted, block_rows):
     store, adj, features = _store(tmp_path / "store", weighted=weighted)
-    monkeypatch.setattr(hopplan, "BLOCK_BYTES", block_rows * 4 * features.shape[1])
+    # BLOCK_BYTES holds the two output blocks (one computed while the other is written)
+    monkeypatch.setattr(hopplan, "BLOCK_BYTES", 2 * block_rows * 4 * features.shape[1])
     monkeypatch.setattr(hopplan, "MIN_BLOCK_ROWS", 1)
     summary = propagate(store, hops=3, norm=norm, threads=2)
     assert summary["hops"] == 3 and summary["norm"] == norm and summary["peak_rss"] > 0
@@ -220,3 +221,13 @@ def test_bad_dtype_and_too_many_restricted_hops_are_refused(small_store):
     with pytest.raises(InputError) as err:
         propagate(small_store, hops=128, restrict=True)
     assert str(err.value) == "--hops 128 is too many for --restrict: use at most 127, or --no-restrict"
+
+
+@pytest.mark.parametrize("shape", [(400, 64, 7916, 4, False, 4, False), (400, 64, 7916, 4, True, 2, True),
+                                   (100, 8, 1000, 8, False, 4, False)])
+def test_a_larger_budget_never_loses_the_plan(shape):
+    # The refusal names the smallest budget with a plan, found by bisection: that is only right if
+    # every larger budget has one too (a window choice once failed at 28.4 KiB after 28.3 KiB fit).
+    fits = [hopplan._fit(*shape, spare) is not None for spare in range(1000, 60_000)]
+    first = fits.index(True)
+    assert all(fits[first:])

@@ -64,7 +64,8 @@ def scale_rows(x, scale):
             x[i, k] *= c
 
 
-@njit(parallel=True, fastmath=True, cache=True)
+# nogil: the caller writes the previous block to disk from another thread meanwhile.
+@njit(parallel=True, fastmath=True, nogil=True, cache=True)
 def smooth_rows(indptr, indices, weights, left, x, through, level, bounds, out):
     """One hop for the rows ``bounds[0]..bounds[-1]``, one parallel task per run of ``bounds``.
 
