@@ -2,6 +2,13 @@
 import numpy as np
 from numba import njit, prange
 
+from .prefetch import prefetch
+
+# Entries ahead whose value the gather asks the cache for: the values are read at random, one
+# cache line each. Measured on a 2M-node, 40M-entry CSR (2 threads, shared machine): the step's
+# gather took about half the time with the hint (16, 32 and 64 ahead within noise of each other).
+AHEAD = 32
+
 
 @njit(parallel=True, cache=True)
 def accumulate_rows(indptr, first, indices, weights, values, acc):
@@ -21,6 +28,7 @@ def accumulate_rows(indptr, first, indices, weights, values, acc):
     last = first + count
     weighted = weights.shape[0] > 0
     gather = values.shape[0] > 0
+    rows = values.reshape(-1, 1)  # the prefetch hint takes a 2-D array
     r0 = np.searchsorted(indptr, first, side="right") - 1
     r1 = np.searchsorted(indptr, last - 1, side="right") - 1
     for r in prange(r0, r1 + 1):
@@ -28,6 +36,8 @@ def accumulate_rows(indptr, first, indices, weights, values, acc):
         hi = min(indptr[r + 1], last) - first
         total = 0.0
         for e in range(lo, hi):
+            if gather and e + AHEAD < count:
+                prefetch(rows, indices[e + AHEAD], 0)
             w = weights[e] if weighted else 1.0
             total += w * values[indices[e]] if gather else w
         acc[r] += total

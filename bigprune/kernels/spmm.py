@@ -1,36 +1,13 @@
 """Kernels for one smoothing hop: a normalised sparse adjacency (with self loops) times dense rows."""
 import numpy as np
-from llvmlite import ir
-from numba import njit, prange, types
-from numba.core import cgutils
-from numba.extending import intrinsic
+from numba import njit, prange
+
+from .prefetch import prefetch
 
 # How many entries ahead the hop kernel asks for the neighbour row it will gather. The gathers are
 # random reads of whole rows of X, so the kernel waits on memory; prefetching a row 16 entries
 # ahead cut its single-thread CPU time by about 30% on a 500k-node, 10M-entry graph (d = 64).
 AHEAD = 16
-_I8P = ir.IntType(8).as_pointer()
-_PREFETCH = "llvm.prefetch.p0" if str(_I8P) == "ptr" else "llvm.prefetch.p0i8"
-
-
-@intrinsic
-def prefetch(typingctx, array, row, col):
-    """Hint the CPU to fetch ``array[row, col]`` into cache for reading; no effect on results."""
-
-    def codegen(context, builder, signature, args):
-        array_type = signature.args[0]
-        view = context.make_array(array_type)(context, builder, args[0])
-        at = [context.cast(builder, value, kind, types.intp)
-              for value, kind in zip(args[1:], signature.args[1:])]
-        pointer = cgutils.get_item_pointer(context, builder, array_type, view, at, wraparound=False)
-        hint = ir.FunctionType(ir.VoidType(), [_I8P] + [ir.IntType(32)] * 3)
-        function = cgutils.get_or_insert_function(builder.module, hint, _PREFETCH)
-        # read access, highest temporal locality, data cache
-        flags = [ir.Constant(ir.IntType(32), v) for v in (0, 3, 1)]
-        builder.call(function, [builder.bitcast(pointer, _I8P)] + flags)
-        return context.get_dummy_value()
-
-    return types.void(array, row, col), codegen
 
 
 @njit(cache=True)
