@@ -7,6 +7,9 @@ ATC 2015). Source blocks are ``block_rows`` rows each, so an entry's block is ``
 import numpy as np
 from numba import njit, prange
 
+from .prefetch import prefetch_row
+from .spmm import AHEAD
+
 
 @njit(cache=True)
 def count_blocks(cols, block_rows, counts):
@@ -82,8 +85,11 @@ def scatter_bucket(rows, cols, weights, x, through, level, cuts, out):
     weighted = weights.shape[0] > 0
     restricted = through.shape[0] > 0
     d = x.shape[1]
+    count = cols.shape[0]
     for t in prange(cuts.shape[0] - 1):
         for e in range(cuts[t], cuts[t + 1]):
+            if e + AHEAD < count:
+                prefetch_row(x, cols[e + AHEAD])
             r = rows[e]
             if restricted and through[r] < level:
                 continue

@@ -1,6 +1,6 @@
 """A cache prefetch hint for numba kernels that gather rows at random."""
 from llvmlite import ir
-from numba import types
+from numba import njit, types
 from numba.core import cgutils
 from numba.extending import intrinsic
 
@@ -26,3 +26,13 @@ def prefetch(typingctx, array, row, col):
         return context.get_dummy_value()
 
     return types.void(array, row, col), codegen
+
+
+@njit(inline="always")
+def prefetch_row(x, row):
+    """Hint the CPU to fetch every cache line of ``x[row]`` (x : 2-D C-contiguous)."""
+    line = max(1, 64 // x.itemsize)  # elements per 64-byte cache line
+    d = x.shape[1]
+    for k in range(0, d, line):
+        prefetch(x, row, k)
+    prefetch(x, row, d - 1)  # the row's last line when rows are not aligned

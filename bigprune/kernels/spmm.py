@@ -2,7 +2,7 @@
 import numpy as np
 from numba import njit, prange
 
-from .prefetch import prefetch
+from .prefetch import prefetch_row
 
 # How many entries ahead the hop kernel asks for the neighbour row it will gather. The gathers are
 # random reads of whole rows of X, so the kernel waits on memory; prefetching a row 16 entries
@@ -62,7 +62,6 @@ def smooth_rows(indptr, indices, weights, left, x, through, level, bounds, out):
     restricted = through.shape[0] > 0
     d = x.shape[1]
     nnz = indices.shape[0]
-    line = max(1, 64 // x.itemsize)  # elements per 64-byte cache line
     base = bounds[0]
     for t in prange(bounds.shape[0] - 1):
         for i in range(bounds[t], bounds[t + 1]):
@@ -75,10 +74,7 @@ def smooth_rows(indptr, indices, weights, left, x, through, level, bounds, out):
                 o[k] = xi[k]
             for e in range(indptr[i], indptr[i + 1]):
                 if e + AHEAD < nnz:
-                    ahead = indices[e + AHEAD]
-                    for k in range(0, d, line):
-                        prefetch(x, ahead, k)
-                    prefetch(x, ahead, d - 1)  # the row's last line when rows are not aligned
+                    prefetch_row(x, indices[e + AHEAD])
                 xj = x[indices[e]]
                 if weighted:
                     c = weights[e]
