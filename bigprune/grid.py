@@ -15,7 +15,7 @@ from contextlib import nullcontext
 import numpy as np
 
 from .arrayfile import NpyFile, pread_into, pwrite_from
-from .kernels.grid import bucket_edges, count_blocks, row_cuts, scatter_bucket
+from .kernels.grid import add_scaled_rows, bucket_edges, count_blocks, row_cuts, scatter_bucket
 from .kernels.spmm import scale_rows
 from .memory import chunk_ranges
 from .runtime import progress
@@ -102,17 +102,18 @@ def hop(grid, source, target, left, right, through, level, edge_rows, threads):
     with progress(total=n, desc=f"propagate hop {level}", unit="row") as bar:
         for i, (a, b) in enumerate(grid.out_bounds):
             _block(grid, i, a, b, source, target, left, right,
-                   none if through is None else through[a:b], level, edge_rows,
+                   none if through is None else through[a:b], level, edge_rows, threads,
                    (out, x, scale, rows, cols, weights, cuts))
             bar.update(b - a)
 
 
-def _block(grid, i, a, b, source, target, left, right, wanted, level, edge_rows, buffers):
+def _block(grid, i, a, b, source, target, left, right, wanted, level, edge_rows, threads, buffers):
     """Output block ``i`` (rows ``a..b``): every source window and bucket, then scale and write.
 
     wanted : int8 (b - a,) or (0,), the block's rows of ``through``.
     """
     out, x, scale, rows, cols, weights, cuts = buffers
+    none = np.zeros(0, dtype=np.float32)
     block = out[:b - a]
     if wanted.shape[0] and not (wanted >= level).any():
         block[:] = np.nan
@@ -127,9 +128,8 @@ def _block(grid, i, a, b, source, target, left, right, wanted, level, edge_rows,
             both = max(a, s0), min(b, s1)  # rows whose self loop lives in this window
             if hi == lo and both[0] >= both[1]:
                 continue
-            window = source.read_into(s0, x[:s1 - s0])
-            if right is not None:
-                scale_rows(window, right.read_into(s0, scale[:s1 - s0]))
+            window = source.read_parallel(s0, x[:s1 - s0], threads)
+            factors = none if right is None else right.read_into(s0, scale[:s1 - s0])
             for first in range(lo, hi, edge_rows):
                 c = min(edge_rows, hi - first)
                 pread_into(fd, rows[:c], 4 * first, path)
@@ -137,9 +137,10 @@ def _block(grid, i, a, b, source, target, left, right, wanted, level, edge_rows,
                 if grid.weighted:
                     pread_into(fd, weights[:c], 4 * (2 * total + first), path)
                 row_cuts(rows[:c], cuts.shape[0] - 1, cuts)
-                scatter_bucket(rows[:c], cols[:c], weights[:c], window, wanted, level, cuts, block)
+                scatter_bucket(rows[:c], cols[:c], weights[:c], factors, window, wanted, level, cuts, block)
             if both[0] < both[1]:
-                block[both[0] - a:both[1] - a] += window[both[0] - s0:both[1] - s0]
+                add_scaled_rows(block[both[0] - a:both[1] - a], window[both[0] - s0:both[1] - s0],
+                                factors[both[0] - s0:both[1] - s0])
     finally:
         os.close(fd)
     scale_rows(block, left.read_into(a, scale[:b - a]))

@@ -77,8 +77,9 @@ def test_row_cuts_never_split_a_row(parts):
     assert (rows[inner] != rows[inner - 1]).all()  # each cut falls where the row changes
 
 
+@pytest.mark.parametrize("scaled", [False, True])
 @pytest.mark.parametrize("weighted", [False, True])
-def test_scatter_bucket_matches_scipy_product(weighted):
+def test_scatter_bucket_matches_scipy_product(weighted, scaled):
     rng = np.random.default_rng(4)
     rows = np.sort(rng.integers(0, 20, size=300)).astype(np.int32)
     cols = rng.integers(0, 15, size=300).astype(np.int32)
@@ -87,8 +88,9 @@ def test_scatter_bucket_matches_scipy_product(weighted):
     out = np.ones((20, 7), dtype=np.float32)
     cuts = np.empty(5, dtype=np.int64)
     row_cuts(rows, 4, cuts)
-    scatter_bucket(rows, cols, weights, x, np.zeros(0, np.int8), 1, cuts, out)
-    data = weights if weighted else np.ones(300)
+    scale = rng.uniform(0.5, 1.5, 15).astype(np.float32) if scaled else np.zeros(0, np.float32)
+    scatter_bucket(rows, cols, weights, scale, x, np.zeros(0, np.int8), 1, cuts, out)
+    data = (weights if weighted else np.ones(300)) * (scale[cols] if scaled else 1.0)
     # reference: scipy.sparse COO product (repeats summed) plus the starting ones
     block = sp.coo_matrix((data.astype(np.float64), (rows, cols)), shape=(20, 15)).tocsr()
     np.testing.assert_allclose(out, 1 + block @ x.astype(np.float64), rtol=1e-5, atol=1e-5)

@@ -73,16 +73,20 @@ def row_cuts(rows, parts, cuts):
 
 
 @njit(parallel=True, fastmath=True, cache=True)
-def scatter_bucket(rows, cols, weights, x, through, level, cuts, out):
-    """out[rows[e]] += weights[e] * x[cols[e]] for one chunk of a bucket, one task per run of ``cuts``.
+def scatter_bucket(rows, cols, weights, scale, x, through, level, cuts, out):
+    """out[rows[e]] += weights[e] * scale[cols[e]] * x[cols[e]] for one chunk of a bucket, one
+    task per run of ``cuts``.
 
     rows, cols : int32 (c,), read (rows sorted). weights : float32 (c,) or (0,) for all-ones,
-    read. x : float32 (src rows, d), the source window already scaled by its right factors, read.
+    read. scale : float32 (src rows,) or (0,) for all-ones, read: the source rows' right factors
+    (applied here rather than to the window, which every output block reads again).
+    x : float32 (src rows, d), the source window, read.
     through : int8 (out rows,) or (0,), read: rows with ``through[r] < level`` are skipped.
     cuts : int64 (tasks + 1,) from ``row_cuts``, read. out : float32 (out rows, d), updated;
     each task writes only its own rows.
     """
     weighted = weights.shape[0] > 0
+    scaled = scale.shape[0] > 0
     restricted = through.shape[0] > 0
     d = x.shape[1]
     count = cols.shape[0]
@@ -94,11 +98,26 @@ def scatter_bucket(rows, cols, weights, x, through, level, cuts, out):
             if restricted and through[r] < level:
                 continue
             o = out[r]
-            xj = x[cols[e]]
-            if weighted:
-                c = weights[e]
+            j = cols[e]
+            xj = x[j]
+            if weighted or scaled:
+                c = (weights[e] if weighted else 1.0) * (scale[j] if scaled else 1.0)
                 for k in range(d):
                     o[k] += c * xj[k]
             else:
                 for k in range(d):
                     o[k] += xj[k]
+
+
+@njit(parallel=True, cache=True)
+def add_scaled_rows(out, x, scale):
+    """out[i] += scale[i] * x[i] (the self loops of a window's rows), in place.
+
+    out : float32 (m, d), updated. x : float32 (m, d), read. scale : float32 (m,) or (0,) for
+    all-ones, read.
+    """
+    scaled = scale.shape[0] > 0
+    for i in prange(out.shape[0]):
+        c = scale[i] if scaled else np.float32(1.0)
+        for k in range(out.shape[1]):
+            out[i, k] += c * x[i, k]
