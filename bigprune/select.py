@@ -5,19 +5,21 @@
 import json
 import math
 import os
+import shutil
 import time
+import uuid
 from pathlib import Path
 
 import numpy as np
 
-from .errors import InputError
+from .errors import BudgetError, InputError
 from .ids import lookup, read_id_file
-from .memory import FIXED_OVERHEAD, parse_size, peak_rss, require, rows_per_chunk
+from .memory import FIXED_OVERHEAD, format_size, parse_size, peak_rss, rows_per_chunk, working_memory
 from .report import CAUTION, changes, class_counts, coverage, diagnostics
 from .runtime import set_threads
-from .kcenter import cover
+from .kcenter import GROUP_ROWS, PRODUCT_ITEMS, cover
 from .schema import NO_LABEL, NO_SPLIT, SPLIT_CODES
-from .store import Store
+from .store import STAGING, Store
 from .strategies import NEEDS_POOL_ROWS, NEEDS_PROXY, STRATEGIES, Problem
 
 # Which nodes each ``--targets`` choice means: split codes.
@@ -87,17 +89,26 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
                  else store.stage_dir("propagate") / f"hop_{hop}.npy")
     width = np.load(embedding, mmap_mode="r").shape[1]
     classes = len(np.unique(label[pool]))
-    need = _needed_bytes(strategy, len(pool), len(chosen_targets), k, width, classes)
-    require(memory, need, f"select --strategy {strategy}")
+    need, chunk = _plan(memory, strategy, len(pool), len(chosen_targets), k, width, classes)
     spare = memory - FIXED_OVERHEAD - need
     window_rows = rows_per_chunk(spare // 4, 4 * width, at_least=1024)
     proxy_rows = rows_per_chunk(spare // 4, PROXY_ROW_COPIES * 8 * (width + classes), at_least=1024)
-    problem = Problem(store, pool, chosen_targets, k, start, int(seed), embedding, window_rows,
-                      label, quota, radius, proxy_rows)
+    scratch = None
+    if chunk is not None:
+        scratch = store.path / STAGING / f"select-{os.getpid()}-{uuid.uuid4().hex[:8]}"
+        scratch.mkdir(parents=True)
+        chunk = (*chunk, scratch)
     given = budget if isinstance(budget, (int, float, str)) or budget is None else str(budget)
     extra = {"budget": given, "target_split": targets, "embedding": f"hop_{hop}", "metric": "L2",
-             "threads": threads, "constraints": constraints}
-    return _select(problem, strategy, label, out, started, extra)
+             "threads": threads, "constraints": constraints,
+             "targets_in_memory": chunk is None}
+    try:
+        problem = Problem(store, pool, chosen_targets, k, start, int(seed), embedding, window_rows,
+                          label, quota, radius, proxy_rows, chunk)
+        return _select(problem, strategy, label, out, started, extra)
+    finally:
+        if scratch is not None:
+            shutil.rmtree(scratch, ignore_errors=True)
 
 
 def _constrain(store, label, whole_pool, budget, radius, initial, include, exclude, min_per_class):
@@ -301,10 +312,31 @@ def _excluded(store, path, whole_pool):
                   "outside_pool": int(len(np.unique(dense[~inside])))}
 
 
-def _needed_bytes(strategy, pool, targets, k, width, classes):
-    """Bytes the stage holds at its peak, for the up-front budget check."""
+def _plan(memory, strategy, pool, targets, k, width, classes):
+    """Bytes the stage holds at its peak, and how targets are read: ``(need, None)`` when
+    their rows fit in memory, else ``(need, (chunk rows, group rows))`` to keep them on disk.
+    Refuses (exit 3) when even the on-disk way does not fit."""
+    spare = working_memory(memory, f"select --strategy {strategy}")
     rows = 4 * width
-    need = 2 * targets * rows + 48 * targets + 16 * pool  # targets + sorted copy, state, masks
+    common = _common_bytes(strategy, pool, k, width, classes)
+    need = common + _in_memory_bytes(targets, width)
+    if need <= spare:
+        return need, None
+    group_rows = GROUP_ROWS
+    fixed = common + _on_disk_bytes(targets, k, width, group_rows)
+    least = fixed + 3 * min(targets, 1024) * rows
+    if least > spare:
+        raise BudgetError(f"--memory-budget {format_size(memory)} is too small for select --strategy "
+                          f"{strategy} with {targets} targets, even with their rows kept on disk: "
+                          f"use at least {format_size(least + FIXED_OVERHEAD, up=True)}")
+    chunk_rows = min(targets, rows_per_chunk((spare - fixed) // 2, 3 * rows, at_least=1024))
+    return fixed + 3 * chunk_rows * rows, (chunk_rows, group_rows)
+
+
+def _common_bytes(strategy, pool, k, width, classes):
+    """Bytes held whatever the targets' way: pool rows (and index), masks, proxy buffers."""
+    rows = 4 * width
+    need = 16 * pool
     if strategy in NEEDS_POOL_ROWS:
         need += 2 * pool * rows  # the rows, plus the index (or the sorted copy) over them
     else:
@@ -312,6 +344,20 @@ def _needed_bytes(strategy, pool, targets, k, width, classes):
     if strategy in NEEDS_PROXY:
         need += 4 * 8 * pool * classes + 32 * pool  # probabilities, scores, ranking
     return need
+
+
+def _in_memory_bytes(targets, width):
+    """Target rows plus their sorted copy, and per-target state."""
+    return 2 * targets * 4 * width + 48 * targets
+
+
+def _on_disk_bytes(targets, k, width, group_rows):
+    """Per-target state (order, position, distances, bounds, results and the build's labels:
+    ~80 bytes), k-means' sample (128 rows per cluster), the queued centres (twice while they
+    grow), one group and one product block; chunks of rows come on top."""
+    rows = 4 * width
+    sample = 128 * int(round(math.sqrt(targets))) * rows
+    return 80 * targets + sample + 2 * k * (rows + 16) + group_rows * rows + 4 * PRODUCT_ITEMS
 
 
 def _select(problem, strategy, label, out, started, extra):
@@ -323,9 +369,9 @@ def _select(problem, strategy, label, out, started, extra):
     else:
         # rows() wants sorted indices: read them sorted, then put them back in pick order.
         by_node = np.argsort(order)
-        rows = np.empty((len(order), problem.target_rows.shape[1]), dtype=np.float32)
+        rows = np.empty((len(order), problem.target_source.shape[1]), dtype=np.float32)
         rows[by_node] = problem.rows(order[by_node])
-        dist, assign = cover(problem.target_rows, rows, seed=problem.seed)
+        dist, assign = cover(problem.target_source, rows, seed=problem.seed)
     report = {"strategy": strategy, "selected": int(len(order)), "pool": int(len(problem.pool)),
               "targets": int(len(problem.targets)), "seed": problem.seed, **extra}
     report.update(coverage(dist, assign, len(order)))

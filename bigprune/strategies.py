@@ -25,7 +25,7 @@ import numpy as np
 
 from .errors import InputError
 from .hardness import age_scores, el2n_scores, entropy_scores
-from .kcenter import cover, greedy
+from .kcenter import RowChunks, cover, greedy
 from .memory import chunk_ranges
 
 Choice = namedtuple("Choice", "order outcome info", defaults=(None, None))
@@ -47,6 +47,8 @@ class Problem:
     label : int64 (N,), every node's label. quota : {class: minimum count} (capped at the
     class's pool size). radius : float or None, kcenter's radius mode.
     proxy_rows : int, rows per chunk when the proxy model trains (planned from the budget).
+    target_chunk : None (target rows are held in memory) or (chunk rows, group rows, scratch
+    directory): the greedy keeps them on disk (see :class:`bigprune.kcenter.RowChunks`).
     """
 
     store: object
@@ -61,6 +63,7 @@ class Problem:
     quota: dict = field(default_factory=dict)
     radius: float = None
     proxy_rows: int = 65536
+    target_chunk: tuple = None
 
     def rows(self, index):
         """Rows ``index`` (sorted int64) of the embedding as float32 (len, d).
@@ -88,6 +91,16 @@ class Problem:
     @cached_property
     def target_rows(self):
         return self.rows(self.targets)
+
+    @property
+    def target_source(self):
+        """What the greedy and the coverage read targets from: their rows, or a RowChunks."""
+        if self.target_chunk is None:
+            return self.target_rows
+        chunk_rows, group_rows, scratch = self.target_chunk
+        width = np.load(self.embedding, mmap_mode="r").shape[1]
+        return RowChunks((len(self.targets), width), lambda at: self.rows(self.targets[at]),
+                         chunk_rows, scratch, group_rows)
 
     @cached_property
     def pool_label(self):
@@ -170,12 +183,12 @@ def _with_quotas(problem, outcome, pool_targets):
     covered = None
     if not pool_targets:  # measure the kept picks once; each class's run then starts from them
         covered = (outcome.dist, outcome.assign) if dropped == 0 else cover(
-            problem.target_rows, problem.pool_rows[problem.pool_positions(order)], problem.seed)
+            problem.target_source, problem.pool_rows[problem.pool_positions(order)], problem.seed)
     for c, need in short.items():
         members = problem.pool[(problem.pool_label == c) & ~np.isin(problem.pool, order)]
         offer = np.concatenate([order, members])
         rows = problem.pool_rows[problem.pool_positions(offer)]
-        outcome = greedy(None if pool_targets else problem.target_rows, rows, len(order) + need,
+        outcome = greedy(None if pool_targets else problem.target_source, rows, len(order) + need,
                          initial=np.arange(len(order)), pool_targets=pool_targets,
                          seed=problem.seed, desc=f"quota {c}",
                          allowed=np.arange(len(order), len(offer)), covered=covered)
@@ -207,7 +220,7 @@ def kcenter(problem):
     In radius mode, the shortest greedy prefix whose radius is at most ``problem.radius``.
     """
     radius_mode = problem.radius is not None
-    outcome = greedy(problem.target_rows, problem.pool_rows,
+    outcome = greedy(problem.target_source, problem.pool_rows,
                      len(problem.pool) if radius_mode else problem.k,
                      initial=problem.pool_positions(problem.initial), seed=problem.seed,
                      radius=problem.radius)

@@ -217,3 +217,41 @@ def test_known_coverage_of_the_initial_picks_gives_the_same_greedy():
     np.testing.assert_allclose(out.dist, d.min(1), rtol=1e-12)
     np.testing.assert_array_equal(out.assign, d.argmin(1))
     assert np.isnan(out.trace[:2]).all() and out.trace[-1] == pytest.approx(d.min(1).max())
+
+
+@pytest.mark.parametrize("chunk_rows,group_rows", [(1, 1), (37, 5), (5000, 4096)])
+def test_targets_kept_on_disk_give_the_same_greedy(tmp_path, chunk_rows, group_rows):
+    # reference: plain_greedy (numpy) and cdist distances; the on-disk path reads targets in
+    # chunks, writes them sorted by group to a scratch file and reads groups back with pread
+    rng = np.random.default_rng(11)
+    centres = rng.normal(scale=4.0, size=(6, 8))
+    targets, candidates = blobs(rng, 900, 8, centres), blobs(rng, 500, 8, centres)
+    source = kc.RowChunks(targets.shape, lambda at: targets[at], chunk_rows, tmp_path, group_rows)
+    out = greedy(source, candidates, 60, initial=[4, 9], exact=True)
+    picks, dist = plain_greedy(targets, candidates, 60, [4, 9])
+    np.testing.assert_array_equal(out.order, picks)
+    np.testing.assert_allclose(out.dist, dist, rtol=1e-12)
+    memory = greedy(targets, candidates, 60, initial=[4, 9], exact=True)
+    np.testing.assert_array_equal(out.assign, memory.assign)
+    np.testing.assert_array_equal(out.dist, memory.dist)
+    assert out.stats["target_bytes_read"] > 0
+    d = cdist(targets.astype(np.float64), candidates[picks].astype(np.float64))
+    dist, assign = cover(source, candidates[picks])
+    np.testing.assert_allclose(dist, d.min(1), rtol=1e-12)
+    np.testing.assert_array_equal(assign, d.argmin(1))
+    assert list(tmp_path.iterdir()) == []  # the sorted copy is removed
+
+
+def test_many_queued_centres_are_screened_exactly(monkeypatch):
+    # reference: scipy.spatial.distance.cdist min and argmin (ties to the earlier centre);
+    # duplicated centres make exact ties that the product screen must resolve like one-at-a-time
+    rng = np.random.default_rng(12)
+    targets = rng.normal(size=(700, 16)).astype(np.float32) * 3
+    centres = rng.normal(size=(300, 16)).astype(np.float32) * 3
+    centres[150:] = centres[:150]
+    d = cdist(targets.astype(np.float64), centres.astype(np.float64))
+    for limit in (0, 10**6):  # all screened, or all one at a time
+        monkeypatch.setattr(kc, "SCALAR_MAX", limit)
+        dist, assign = cover(targets, centres)
+        np.testing.assert_allclose(dist, d.min(1), rtol=1e-12)
+        np.testing.assert_array_equal(assign, d.argmin(1))

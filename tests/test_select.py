@@ -552,3 +552,37 @@ def test_restricted_propagation_refuses_uncomputed_targets(tmp_path, capsys):
     assert main(args + ["--out", str(tmp_path / "a.parquet")]) == 0
     assert main(args + ["--targets", "unlabeled", "--out", str(tmp_path / "b.parquet")]) == 2
     assert "rerun bigprune propagate --no-restrict" in capsys.readouterr().err
+
+
+# ---- targets kept on disk when their rows do not fit the budget -----------------------------
+@pytest.mark.parametrize("strategy,options", [("kcenter", {}), ("kcenter", {"min_per_class": 4}),
+                                              ("random", {})])
+def test_targets_on_disk_give_the_same_selection_and_coverage(skewed, monkeypatch, strategy, options):
+    # reference: the in-memory run (checked against a plain numpy greedy in test_kcenter) and
+    # scipy cdist coverage of the chosen nodes
+    memory = run(skewed, strategy, 16, **options)
+    assert memory["targets_in_memory"]
+    monkeypatch.setattr(select_module, "_in_memory_bytes", lambda targets, width: 1 << 50)
+    monkeypatch.setattr(select_module, "GROUP_ROWS", 7)
+    disk = run(skewed, strategy, 16, memory_budget="1GiB", **options)
+    assert not disk["targets_in_memory"]
+    np.testing.assert_array_equal(disk["indices"], memory["indices"])
+    assert disk["coverage"] == memory["coverage"] and disk["load"] == memory["load"]
+    hop = skewed.load("propagate", "hop_1").astype(np.float64)
+    targets = np.flatnonzero(skewed.load("graph", "split") == 3)
+    d = cdist(hop[targets], hop[disk["indices"]]).min(1)
+    assert disk["coverage"]["radius"] == pytest.approx(d.max(), rel=1e-6)
+    assert not any((skewed.path / ".staging").glob("select-*"))  # scratch removed
+
+
+def test_refuses_when_even_targets_on_disk_do_not_fit(skewed, monkeypatch, capsys):
+    monkeypatch.setattr(select_module, "_in_memory_bytes", lambda targets, width: 1 << 50)
+    monkeypatch.setattr(select_module, "_on_disk_bytes", lambda *args: 3 << 30)
+    assert main(["select", "--store", str(skewed.path), "--strategy", "kcenter", "--budget", "5",
+                 "--memory-budget", "2GiB", "--out", str(skewed.path.parent / "x.parquet"),
+                 "--quiet"]) == 3
+    err = capsys.readouterr().err
+    # 3 GiB of state + 320 MiB fixed overhead + the pool's rows and one chunk, rounded up
+    assert ("--memory-budget 2.0 GiB is too small for select --strategy kcenter with 100 targets, "
+            "even with their rows kept on disk: use at least 3.4 GiB") in err
+    assert not run(skewed, "kcenter", 5, memory_budget="3.4GiB")["targets_in_memory"]

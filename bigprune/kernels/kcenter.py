@@ -1,96 +1,134 @@
-"""Kernels for the pruned greedy: distance updates over clustered targets.
+"""Kernels for the pruned greedy: bringing one group of targets up to date with new centres.
 
-Targets are stored sorted by cluster, so cluster ``g`` owns rows ``offsets[g]:offsets[g + 1]``.
-Distances are computed in float64 from float32 rows, so the pruned and the plain greedy agree.
-A cluster's "maximum" is -1 when it holds no (active) target, since real distances are >= 0.
+Targets are stored sorted by group, and each kernel sees one group's rows. Exact distances are
+computed in float64 from float32 rows, so the pruned and the plain greedy agree. Whatever path
+a group takes (one centre at a time, or a product screen), a target ends at the exact minimum
+distance to the centres seen, assigned to the earliest centre at that distance.
+A group's "maximum" is -1 when it holds no (active) target, since real distances are >= 0.
 """
 import numpy as np
-from numba import njit, prange
+from numba import njit
 
 BLOCK = 16  # dimensions summed between early-exit checks
 
 
-@njit(parallel=True, cache=True)
-def update(points, offsets, order, to_centre, centres, radius, centre, slot,
-           dist, assign, active, top_all, top_active, top_index, computed):
-    """Lower each target's distance to the chosen set after ``centre`` joins it.
-
-    A whole cluster is skipped when ``||centre - mu|| - radius >= top_all`` and one target when
-    ``||centre - mu|| - ||t - mu|| >= dist[t]`` (triangle inequality: neither can get closer).
-
-    points : float32 (m, d), read, targets sorted by cluster. offsets : int64 (G + 1,), read.
-    order : int64 (m,), read, the caller's index of each sorted row (breaks ties: lowest wins).
-    to_centre : float64 (m,), read, ``||t - mu_g||``. centres : float64 (G, d), read.
-    radius : float64 (G,), read, max ``to_centre`` per cluster. centre : float64 (d,), read.
-    slot : int, the new centre's position in the selection.
-    dist : float64 (m,), updated. assign : int64 (m,), updated, slot of the nearest chosen centre.
-    active : uint8 (m,), read, 0 for targets set aside (still updated, never farthest).
-    top_all : float64 (G,), updated, max dist per cluster. top_active : float64 (G,), updated,
-    max dist over active targets. top_index : int64 (G,), updated, ``order`` of that target.
-    computed : int64 (G,), filled, distances computed per cluster in this call.
-    """
+@njit(cache=True)
+def _exact(points, t, row, bound):
+    """Squared distance of ``points[t]`` to ``row``; stops early (returning >= bound) past ``bound``."""
     d = points.shape[1]
-    for g in prange(offsets.shape[0] - 1):
-        gap = 0.0
-        for j in range(d):
-            diff = centre[j] - centres[g, j]
-            gap += diff * diff
-        gap = np.sqrt(gap)
-        computed[g] = 0
-        if gap - radius[g] >= top_all[g]:
-            continue
-        best_all = -1.0
-        best_active = -1.0
-        best_index = -1
-        count = 0
-        for t in range(offsets[g], offsets[g + 1]):
-            current = dist[t]
-            if gap - to_centre[t] < current:
-                # Partial sums only grow: stop a block after they pass the current distance.
-                bound = current * current
-                total = 0.0
-                for start in range(0, d, BLOCK):
-                    for j in range(start, min(d, start + BLOCK)):
-                        diff = points[t, j] - centre[j]
-                        total += diff * diff
-                    if total >= bound:
-                        break
-                count += 1
-                if total < bound:
-                    closer = np.sqrt(total)
-                    if closer < current:
-                        current = closer
-                        dist[t] = current
-                        assign[t] = slot
-            if current > best_all:
-                best_all = current
-            if active[t] and (current > best_active or (current == best_active and order[t] < best_index)):
-                best_active = current
-                best_index = order[t]
-        top_all[g] = best_all
-        top_active[g] = best_active
-        top_index[g] = best_index
-        computed[g] = count
+    total = 0.0
+    for start in range(0, d, BLOCK):
+        for j in range(start, min(d, start + BLOCK)):
+            diff = np.float64(points[t, j]) - np.float64(row[j])
+            total += diff * diff
+        if total >= bound:
+            break
+    return total
 
 
 @njit(cache=True)
-def refresh_cluster(offsets, order, dist, active, g, top_active, top_index):
-    """Recompute cluster ``g``'s farthest active target after one was set aside.
+def apply_centres(points, to_centre, mu, radius, top, rows, slots, dist, assign):
+    """Lower the group's distances with the centres ``rows``, one centre at a time.
 
-    offsets : int64 (G + 1,), read. order : int64 (m,), read. dist : float64 (m,), read.
-    active : uint8 (m,), read. top_active : float64 (G,), updated. top_index : int64 (G,), updated.
+    A centre is skipped for the whole group when ``||c - mu|| - radius >= top`` and for one
+    target when ``||c - mu|| - ||t - mu|| >= dist[t]`` (triangle inequality: neither can get
+    closer).
+
+    points : float32 (b, d), read, the group's targets. to_centre : float64 (b,), read,
+    ``||t - mu||``. mu : float64 (d,), read, the group's centre. radius : float, max of
+    ``to_centre``. top : float, an upper bound of ``dist`` over the group.
+    rows : float32 (p, d), read, new centres in pick order. slots : int64 (p,), read, their
+    positions in the selection. dist : float64 (b,), updated. assign : int64 (b,), updated.
+    Returns the number of exact distances computed.
     """
+    d = points.shape[1]
+    computed = 0
+    for c in range(rows.shape[0]):
+        gap = 0.0
+        for j in range(d):
+            diff = np.float64(rows[c, j]) - mu[j]
+            gap += diff * diff
+        gap = np.sqrt(gap)
+        if gap - radius >= top:
+            continue
+        for t in range(points.shape[0]):
+            current = dist[t]
+            if gap - to_centre[t] < current:
+                bound = current * current
+                total = _exact(points, t, rows[c], bound)
+                computed += 1
+                if total < bound:
+                    closer = np.sqrt(total)
+                    if closer < current:
+                        dist[t] = closer
+                        assign[t] = slots[c]
+    return computed
+
+
+@njit(cache=True)
+def screen_centres(points, approx, tnorm, cnorm, rows, slots, tol, dist, assign):
+    """Lower the group's distances with many centres at once, from float32 squared distances.
+
+    ``approx[t, c]`` is within ``tol * (|t| + |c|)^2`` (plus float64 rounding) of the squared
+    distance: the float32 error bound of a d-term sum of products (Higham's gamma_d), for the
+    direct sum of squared differences and for ``|t|^2 + |c|^2 - 2 t.c`` alike. Only centres
+    whose lower bound can beat both the target's current distance and the smallest upper bound
+    are measured exactly, in pick order.
+
+    points : float32 (b, d), read. approx : float32 (b, p), read.
+    tnorm : float64 (b,), read. cnorm : float64 (p,), read, squared norms.
+    rows : float32 (p, d), read. slots : int64 (p,), read, ascending. tol : float.
+    dist : float64 (b,), updated. assign : int64 (b,), updated.
+    Returns the number of exact distances computed.
+    """
+    computed = 0
+    p = rows.shape[0]
+    for t in range(points.shape[0]):
+        current = dist[t]
+        best_upper = np.inf
+        for c in range(p):
+            slack = tol * (tnorm[t] + cnorm[c] + 2.0 * np.sqrt(tnorm[t] * cnorm[c])) + 1e-13 * (tnorm[t] + cnorm[c])
+            upper = np.float64(approx[t, c]) + slack
+            if upper < best_upper:
+                best_upper = upper
+        limit = min(best_upper, current * current) * (1.0 + 1e-12)
+        for c in range(p):
+            slack = tol * (tnorm[t] + cnorm[c] + 2.0 * np.sqrt(tnorm[t] * cnorm[c])) + 1e-13 * (tnorm[t] + cnorm[c])
+            if np.float64(approx[t, c]) - slack > limit:
+                continue
+            bound = current * current
+            total = _exact(points, t, rows[c], bound)
+            computed += 1
+            if total < bound:
+                closer = np.sqrt(total)
+                if closer < current:
+                    current = closer
+                    dist[t] = closer
+                    assign[t] = slots[c]
+    return computed
+
+
+@njit(cache=True)
+def group_tops(dist, active, order):
+    """Largest distance, largest active distance and its target (lowest ``order`` on ties).
+
+    dist : float64 (b,), read. active : uint8 (b,), read. order : int64 (b,), read, the
+    caller's index of each row. Returns (top_all, top_active, index), -1 where none.
+    """
+    best_all = -1.0
     best_active = -1.0
     best_index = -1
-    for t in range(offsets[g], offsets[g + 1]):
-        if active[t] and (dist[t] > best_active or (dist[t] == best_active and order[t] < best_index)):
-            best_active = dist[t]
+    for t in range(dist.shape[0]):
+        current = dist[t]
+        if current > best_all:
+            best_all = current
+        if active[t] and (current > best_active or (current == best_active and order[t] < best_index)):
+            best_active = current
             best_index = order[t]
-    top_active[g] = best_active
-    top_index[g] = best_index
+    return best_all, best_active, best_index
 
 
-@njit(parallel=True, cache=True)
+@njit(cache=True)
 def distances_to(points, centres, labels, out):
     """``out[t] = ||points[t] - centres[labels[t]]||`` in float64.
 
@@ -98,10 +136,33 @@ def distances_to(points, centres, labels, out):
     out : float64 (m,), filled.
     """
     d = points.shape[1]
-    for t in prange(points.shape[0]):
+    for t in range(points.shape[0]):
         g = labels[t]
         total = 0.0
         for j in range(d):
             diff = points[t, j] - centres[g, j]
             total += diff * diff
         out[t] = np.sqrt(total)
+
+
+@njit(cache=True)
+def squared_norms(points, out):
+    """``out[t] = ||points[t]||^2`` in float64. points : float32 (b, d), read. out : (b,), filled."""
+    for t in range(points.shape[0]):
+        total = 0.0
+        for j in range(points.shape[1]):
+            value = np.float64(points[t, j])
+            total += value * value
+        out[t] = total
+
+
+@njit(cache=True)
+def gaps_to(rows, mu, out):
+    """``out[c] = ||rows[c] - mu||`` in float64. rows : float32 (p, d), read. mu : float64 (d,),
+    read. out : float64 (p,), filled."""
+    for c in range(rows.shape[0]):
+        total = 0.0
+        for j in range(rows.shape[1]):
+            diff = np.float64(rows[c, j]) - mu[j]
+            total += diff * diff
+        out[c] = np.sqrt(total)
