@@ -122,8 +122,11 @@ def _fit(n, d, nnz, index_bytes, weighted, storage_bytes, restrict, spare):
                     (spare - hop_rows) // (2 * edge_hop))  # half of the hop's room for windows
     edge_rows = max(MIN_EDGE_ROWS, min(edge_rows, max(nnz, 1)))
     room = spare - mask - small - edge_rows * edge_hop
+    # Each output window reads all of X_k once, so output windows get most of the room (4/5:
+    # fewer passes over X_k; paired runs at 600 MiB, 2M x 64, 40M entries: hop 4.3-6.3 s
+    # against 7.1-8.3 s with 3/5 on a loaded machine); small source windows gather locally.
     for _ in range(64):  # the bucket offsets grow as windows shrink: make room for them
-        out_rows = min(n, LOCAL_ROWS, max(MIN_WINDOW_ROWS, room * 3 // 5 // window_row))
+        out_rows = min(n, LOCAL_ROWS, max(MIN_WINDOW_ROWS, room * 4 // 5 // window_row))
         src_rows = min(n, LOCAL_ROWS, max(MIN_WINDOW_ROWS, (room - out_rows * window_row) // window_row))
         offsets = 8 * -(-n // out_rows) * (-(-n // src_rows) + 1)
         hop = mask + small + edge_rows * edge_hop + (out_rows + src_rows) * window_row + offsets
