@@ -1,5 +1,5 @@
-"""The pruned greedy (bigprune/kcenter.py, bigprune/kernels/kcenter.py) against brute force,
-published approximation bounds and a plain numpy greedy."""
+"""The pruned greedy (bigprune/kcenter.py, bigprune/targetgroups.py, bigprune/kernels/kcenter.py)
+against brute force, published approximation bounds and a plain numpy greedy."""
 from itertools import combinations
 
 import numpy as np
@@ -7,6 +7,7 @@ import pytest
 from scipy.spatial.distance import cdist
 
 from bigprune import kcenter as kc
+from bigprune import targetgroups
 from bigprune.kcenter import cover, greedy
 from bigprune.runtime import set_threads
 
@@ -251,7 +252,7 @@ def test_many_queued_centres_are_screened_exactly(monkeypatch):
     centres[150:] = centres[:150]
     d = cdist(targets.astype(np.float64), centres.astype(np.float64))
     for limit in (0, 10**6):  # all screened, or all one at a time
-        monkeypatch.setattr(kc, "SCALAR_MAX", limit)
+        monkeypatch.setattr(targetgroups, "SCALAR_MAX", limit)
         dist, assign = cover(targets, centres)
         np.testing.assert_allclose(dist, d.min(1), rtol=1e-12)
         np.testing.assert_array_equal(assign, d.argmin(1))
