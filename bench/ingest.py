@@ -12,9 +12,10 @@ and both peak RSS figures.
 import os
 import sys
 
-# bench/select.py would shadow the standard library's select module: keep this folder off the path.
+# bench/select.py would shadow the standard library's select module: keep this folder off the path,
+# and put the work tree first so that a copy installed in site-packages (CI's) is not measured.
 _HERE = os.path.dirname(os.path.abspath(__file__))
-sys.path[:] = [p for p in sys.path if os.path.abspath(p or ".") != _HERE]
+sys.path[:] = [os.path.dirname(_HERE)] + [p for p in sys.path if os.path.abspath(p or ".") != _HERE]
 
 import argparse  # noqa: E402
 import json  # noqa: E402

@@ -7,12 +7,23 @@ so that one block's entries fit), and each block is sorted and merged on its own
 import numpy as np
 
 from .arrayfile import NpyFile
-from .kernels.csr import block_bounds, compact_rows, scatter_directed, scatter_edges, sort_unique_rows
-from .memory import chunk_ranges
+from .kernels.csr import (block_bounds, compact_rows, scatter_directed, scatter_edges, sort_unique_rows,
+                          split_by_block)
+from .memory import MIB, chunk_ranges
 
 # Bytes per directed entry while a block is built: its bucket record (row, col, weight) plus its
 # CSR slot (col, weight) plus per-row sort scratch.
 ENTRY_BYTES = 8 + 8 + 4 + 8 + 4 + 8
+# Records of the bucketing pass per spilled edge row: the row, its columns, its two directed
+# entries (as columns, then as one block's records).
+BUCKET_RECORDS = 6
+# The last copy (raw neighbour file -> .npy) needs no more than this at a time to run at disk speed.
+COPY_WINDOW = 64 * MIB
+
+
+def count_dtype(edge_rows):
+    """The narrowest dtype for per-node entry counts: a node has at most two per edge row."""
+    return np.int32 if 2 * int(edge_rows) < 2**31 else np.int64
 
 
 def in_memory_bytes_per_row(index_dtype, weighted):
@@ -22,35 +33,37 @@ def in_memory_bytes_per_row(index_dtype, weighted):
 
 
 class EdgeRows:
-    """The mapped edge rows ``(u, v[, w])`` of one ingest, in memory or spilled to ``scratch``."""
+    """The mapped edge rows ``(u, v[, w])`` of one ingest: in memory as one array per column,
+    or spilled to ``spill_path`` as records."""
 
     def __init__(self, capacity, index_dtype, weighted, spill_path=None):
         self.index_dtype, self.weighted, self.count = np.dtype(index_dtype), weighted, 0
         fields = [("u", index_dtype), ("v", index_dtype)] + ([("w", np.float32)] if weighted else [])
         self.record = np.dtype(fields)
         self.spill_path = spill_path
-        if spill_path is None:
-            self.rows = np.empty(capacity, dtype=self.record)
+        if spill_path is None:  # columns, not records: the scatter reads them without a copy
+            self.u = np.empty(capacity, dtype=self.index_dtype)
+            self.v = np.empty(capacity, dtype=self.index_dtype)
+            self.w = np.empty(capacity if weighted else 0, dtype=np.float32)
         else:
             self._file = open(spill_path, "wb")
 
     def append(self, u, v, w):
-        block = np.empty(len(u), dtype=self.record)
-        block["u"], block["v"] = u, v
-        if self.weighted:
-            block["w"] = w
         if self.spill_path is None:
-            self.rows[self.count:self.count + len(u)] = block
+            end = self.count + len(u)
+            self.u[self.count:end], self.v[self.count:end] = u, v
+            if self.weighted:
+                self.w[self.count:end] = w
         else:
+            block = np.empty(len(u), dtype=self.record)
+            block["u"], block["v"] = u, v
+            if self.weighted:
+                block["w"] = w
             block.tofile(self._file)
         self.count += len(u)
 
     def chunks(self, rows):
-        """Yield the rows back in order, ``rows`` at a time."""
-        if self.spill_path is None:
-            for start, stop in chunk_ranges(self.count, rows):
-                yield self.rows[start:stop]
-            return
+        """Yield the spilled rows back in order, ``rows`` records at a time."""
         self._file.close()
         with open(self.spill_path, "rb") as fh:
             for start, stop in chunk_ranges(self.count, rows):
@@ -60,15 +73,15 @@ class EdgeRows:
 def build_in_memory(edge_rows, counts, writer):
     """Scatter all rows at once (they fit); write indptr, indices(, weight). Returns unique nnz."""
     n = len(counts)
+    # indptr[r + 1] starts as row r's first slot and is the scatter's cursor, so that it ends as
+    # row r's end: the row pointers without a second array.
     indptr = np.zeros(n + 1, dtype=np.int64)
-    np.cumsum(counts, out=indptr[1:])
-    indices = np.empty(int(indptr[-1]), dtype=edge_rows.index_dtype)
+    np.cumsum(counts[:-1], out=indptr[2:])
+    indices = np.empty(int(indptr[-1] + counts[-1]), dtype=edge_rows.index_dtype)
     weights = np.empty(len(indices) if edge_rows.weighted else 0, dtype=np.float32)
-    rows = edge_rows.rows[:edge_rows.count]
-    w = rows["w"] if edge_rows.weighted else np.empty(0, np.float32)
-    scatter_edges(np.ascontiguousarray(rows["u"]), np.ascontiguousarray(rows["v"]), np.ascontiguousarray(w),
-                  indptr[:-1].copy(), indices, weights)
-    edge_rows.rows = None
+    count = edge_rows.count
+    scatter_edges(edge_rows.u[:count], edge_rows.v[:count], edge_rows.w[:count], indptr[1:], indices, weights)
+    edge_rows.u = edge_rows.v = edge_rows.w = None
     kept = np.empty(n, dtype=np.int64)
     sort_unique_rows(indptr, indices, weights, kept)
     new_indptr = np.empty_like(indptr)
@@ -89,62 +102,80 @@ def build_in_blocks(edge_rows, counts, writer, block_bytes, scratch, bar=None):
     blocks = len(bounds) - 1
     entry = np.dtype([("r", edge_rows.index_dtype), ("c", edge_rows.index_dtype)]
                      + ([("w", np.float32)] if edge_rows.weighted else []))
-    buckets = [open(scratch / f"bucket-{b}.bin", "wb") for b in range(blocks)]
-    for rows in edge_rows.chunks(max(1, limit // 2)):
-        rows = rows[rows["u"] != rows["v"]]
-        both = np.empty(2 * len(rows), dtype=entry)
-        both["r"][:len(rows)], both["c"][:len(rows)] = rows["u"], rows["v"]
-        both["r"][len(rows):], both["c"][len(rows):] = rows["v"], rows["u"]
-        if edge_rows.weighted:
-            both["w"][:len(rows)] = both["w"][len(rows):] = rows["w"]
-        which = np.searchsorted(bounds, both["r"], side="right") - 1
-        order = np.argsort(which, kind="stable")
-        cuts = np.searchsorted(which[order], np.arange(blocks + 1))
-        for b in range(blocks):
-            if cuts[b + 1] > cuts[b]:
-                both[order[cuts[b]:cuts[b + 1]]].tofile(buckets[b])
-    for fh in buckets:
-        fh.close()
+    _bucket(edge_rows, bounds, entry, scratch, block_bytes)
     kept = np.empty(n, dtype=np.int64)
     raw_indices = open(scratch / "indices.bin", "wb")
     raw_weights = open(scratch / "weights.bin", "wb") if edge_rows.weighted else None
     for b in range(blocks):
-        lo, hi = int(bounds[b]), int(bounds[b + 1])
-        bucket = np.fromfile(scratch / f"bucket-{b}.bin", dtype=entry)
-        (scratch / f"bucket-{b}.bin").unlink()
-        local = np.zeros(hi - lo + 1, dtype=np.int64)
-        np.cumsum(counts[lo:hi], out=local[1:])
-        indices = np.empty(len(bucket), dtype=edge_rows.index_dtype)
-        weights = np.empty(len(bucket) if edge_rows.weighted else 0, dtype=np.float32)
-        w = np.ascontiguousarray(bucket["w"]) if edge_rows.weighted else np.empty(0, np.float32)
-        scatter_directed(np.ascontiguousarray(bucket["r"]), np.ascontiguousarray(bucket["c"]), w, lo,
-                         local[:-1].copy(), indices, weights)
-        del bucket
-        sort_unique_rows(local, indices, weights, kept[lo:hi])
-        compacted = np.empty_like(local)
-        compact_rows(local, kept[lo:hi], indices, weights, compacted)
-        indices[:compacted[-1]].tofile(raw_indices)
+        indices, weights = _merge_block(scratch / f"bucket-{b}.bin", entry, counts, int(bounds[b]),
+                                        int(bounds[b + 1]), kept, edge_rows)
+        indices.tofile(raw_indices)
         if raw_weights is not None:
-            weights[:compacted[-1]].tofile(raw_weights)
+            weights.tofile(raw_weights)
+        del indices, weights  # before the next block's arrays exist
         if bar is not None:
             bar.update(1)
     raw_indices.close()
     indptr = np.zeros(n + 1, dtype=np.int64)
     np.cumsum(kept, out=indptr[1:])
+    del kept
     writer.save("indptr", indptr)
     unique = int(indptr[-1])
-    _copy_raw(scratch / "indices.bin", writer, "indices", unique, edge_rows.index_dtype, block_bytes)
+    del indptr
+    _copy_raw(scratch / "indices.bin", writer, "indices", unique, edge_rows.index_dtype)
     if raw_weights is not None:
         raw_weights.close()
-        _copy_raw(scratch / "weights.bin", writer, "weight", unique, np.float32, block_bytes)
+        _copy_raw(scratch / "weights.bin", writer, "weight", unique, np.float32)
     return unique, blocks
 
 
-def _copy_raw(raw, writer, name, count, dtype, window_bytes):
-    """Turn a raw binary file into a ``.npy`` of the stage, a window at a time."""
+def _bucket(edge_rows, bounds, entry, scratch, block_bytes):
+    """Write each directed entry to the bucket file of its row block, ``bucket-<b>.bin``."""
+    blocks = len(bounds) - 1
+    buckets = [open(scratch / f"bucket-{b}.bin", "wb") for b in range(blocks)]
+    cuts = np.empty(blocks + 1, dtype=np.int64)
+    for rows in edge_rows.chunks(max(1, block_bytes // (BUCKET_RECORDS * entry.itemsize))):
+        w = np.ascontiguousarray(rows["w"]) if edge_rows.weighted else np.empty(0, np.float32)
+        r = np.empty(2 * len(rows), dtype=edge_rows.index_dtype)
+        c = np.empty_like(r)
+        ws = np.empty(len(r) if edge_rows.weighted else 0, dtype=np.float32)
+        split_by_block(np.ascontiguousarray(rows["u"]), np.ascontiguousarray(rows["v"]), w, bounds,
+                       r, c, ws, cuts)
+        del rows, w
+        for b in range(blocks):
+            part = np.empty(cuts[b + 1] - cuts[b], dtype=entry)
+            part["r"], part["c"] = r[cuts[b]:cuts[b + 1]], c[cuts[b]:cuts[b + 1]]
+            if edge_rows.weighted:
+                part["w"] = ws[cuts[b]:cuts[b + 1]]
+            part.tofile(buckets[b])
+    for fh in buckets:
+        fh.close()
+
+
+def _merge_block(path, entry, counts, lo, hi, kept, edge_rows):
+    """Rows ``lo..hi`` from their bucket file: scattered, sorted and merged; fills ``kept[lo:hi]``
+    and returns the block's unique neighbours and weights, row after row."""
+    bucket = np.fromfile(path, dtype=entry)
+    path.unlink()
+    local = np.zeros(hi - lo + 1, dtype=np.int64)
+    np.cumsum(counts[lo:hi], out=local[1:])
+    indices = np.empty(len(bucket), dtype=edge_rows.index_dtype)
+    weights = np.empty(len(bucket) if edge_rows.weighted else 0, dtype=np.float32)
+    w = np.ascontiguousarray(bucket["w"]) if edge_rows.weighted else np.empty(0, np.float32)
+    scatter_directed(np.ascontiguousarray(bucket["r"]), np.ascontiguousarray(bucket["c"]), w, lo,
+                     local[:-1].copy(), indices, weights)
+    del bucket, w
+    sort_unique_rows(local, indices, weights, kept[lo:hi])
+    compacted = np.empty_like(local)
+    compact_rows(local, kept[lo:hi], indices, weights, compacted)
+    return indices[:compacted[-1]], weights[:compacted[-1]]
+
+
+def _copy_raw(raw, writer, name, count, dtype):
+    """Turn a raw binary file into a ``.npy`` of the stage, ``COPY_WINDOW`` bytes at a time."""
     created = writer.array(name, (count,), dtype)  # the file with its header; pages untouched
     del created
-    rows = max(1, window_bytes // np.dtype(dtype).itemsize)
+    rows = max(1, COPY_WINDOW // np.dtype(dtype).itemsize)
     with open(raw, "rb") as fh, NpyFile(writer.path / f"{name}.npy", writable=True) as out:
         for start, stop in chunk_ranges(count, rows):
             out.write(start, np.fromfile(fh, dtype=dtype, count=stop - start))

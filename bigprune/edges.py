@@ -4,7 +4,7 @@ import pyarrow as pa
 import pyarrow.compute  # noqa: F401  (pa.compute)
 
 from .errors import BudgetError, InputError
-from .csrbuild import EdgeRows, build_in_blocks, build_in_memory, in_memory_bytes_per_row
+from .csrbuild import EdgeRows, build_in_blocks, build_in_memory, count_dtype, in_memory_bytes_per_row
 from .kernels.csr import count_endpoints
 from .memory import format_size
 from .runtime import progress
@@ -91,7 +91,7 @@ def build_csr(batches, edges, node_count, index_dtype, writer, edge_bytes):
     in_memory = edges.rows * in_memory_bytes_per_row(index_dtype, edges.weighted) <= edge_bytes
     scratch = writer.scratch()
     rows = EdgeRows(edges.rows, index_dtype, edges.weighted, None if in_memory else scratch / "edges.bin")
-    counts = np.zeros(node_count, dtype=np.int64)
+    counts = np.zeros(node_count, dtype=count_dtype(edges.rows))
     loops, dropped = 0, 0
     with progress(total=edges.rows, desc="ingest edges", unit="edge") as bar:
         for u, v, w, batch_dropped in batches:

@@ -9,15 +9,25 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from .kernels.idhash import build_table, lookup
+from .memory import MIB
 
 # Slots per node: half full, so a lookup probes about 1.5 slots for a hit and 2.5 for a miss.
 SLOTS_PER_NODE = 2
 SLOT_BYTES = 12  # int64 key + int32 row
+# Read-ahead per column when streaming a Parquet file. pyarrow's default (pre_buffer) fetches
+# every row group's column chunks before the first batch: a whole edge partition or the whole
+# feature column held at once (measured: 1.1 GB more RSS and 50% slower on a 1 GB feature column).
+READ_BUFFER = 4 * MIB
 
 
 def table_bytes(nodes):
     """Bytes the id table of ``nodes`` ids holds."""
     return _slots(nodes) * SLOT_BYTES
+
+
+def streamed(path, metadata=None):
+    """``path`` opened to be read batch by batch with bounded read-ahead (see ``READ_BUFFER``)."""
+    return pq.ParquetFile(path, metadata=metadata, pre_buffer=False, buffer_size=READ_BUFFER)
 
 
 def hashable(node_id_type, edge_files, index_dtype):
@@ -36,12 +46,14 @@ def hashable(node_id_type, edge_files, index_dtype):
 
 
 class IdTable:
-    """The node ids (node table row order is the dense row) as an open-addressing table."""
+    """The node ids (node table row order is the dense row) as an open-addressing table;
+    ``repeated`` is the first id given twice, or None."""
 
     def __init__(self, ids):
         ids = np.ascontiguousarray(ids, dtype=np.int64)
         self.table = np.empty((_slots(len(ids)), 3), dtype=np.uint32)
-        build_table(ids, self.table)
+        row = build_table(ids, self.table)
+        self.repeated = None if row < 0 else int(ids[row])
 
     def rows(self, column):
         """Dense rows of an Arrow integer column, -1 for ids not in the table and for nulls."""
@@ -65,7 +77,7 @@ def hashed_rows(edges, ids, batch_rows, drop_unknown, explain_unmapped, explain_
     columns = ["src", "dst"] + (["weight"] if edges.weighted else [])
     no_weight = np.empty(0, dtype=np.float32)
     for path in edges.files:
-        for batch in pq.ParquetFile(path).iter_batches(batch_size=batch_rows, columns=columns):
+        for batch in streamed(path).iter_batches(batch_size=batch_rows, columns=columns):
             u, v = ids.rows(batch.column(0)), ids.rows(batch.column(1))
             known = (u >= 0) & (v >= 0)
             dropped = 0

@@ -1,14 +1,16 @@
 """Ingest: the night's edge partitions and the node table become the store's graph stage."""
 import time
+from typing import NamedTuple
 
 import numpy as np
 import pyarrow as pa
 
 from .arrayfile import NpyFile
+from .csrbuild import count_dtype
 from .errors import BudgetError
 from .edges import EdgeFiles, build_csr, duckdb_rows, explain_unmapped, explain_weight, register_ids, scan_error
 from .fingerprint import fingerprints
-from .idrows import IdTable, hashable, hashed_rows, table_bytes
+from .idrows import hashable, hashed_rows, table_bytes
 from .memory import DEFAULT_BUDGET, FIXED_OVERHEAD, MIB, format_size, parse_size, peak_rss, working_memory
 from .nodetable import NodeTable, copy_npy_features
 from .runtime import set_threads
@@ -63,42 +65,47 @@ def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, thr
     partitions = EdgeFiles(edge_files(edges), table.id_kind)
     n = table.rows
     index_dtype = np.int32 if n < 2**31 - 1 else np.int64
-    hash_bytes = table_bytes(n) if hashable(table.file.schema_arrow.field("node_id").type, partitions.files,
-                                            index_dtype) else 0
-    duck_bytes, edge_bytes, chunk_bytes = _plan(budget, n, partitions.rows, hash_bytes)
-    table.load()
+    hashed = hashable(table.file.schema_arrow.field("node_id").type, partitions.files, index_dtype)
+    plan = _plan(budget, n, partitions.rows, table_bytes(n) if hashed else 0)
+    table.load(hash_ids=hashed)
     inputs = {"edges": fingerprints(partitions.files), "nodes": fingerprints([nodes])}
     if features is not None:
         inputs["features"] = fingerprints([features])
     params = {"edges": str(edges), "nodes": str(nodes), "drop_unknown": bool(drop_unknown),
               "features": None if features is None else str(features)}
     with store.locked(), store.begin("graph", params=params, inputs=inputs) as writer:
+        # The node columns go to the store first so that only the id map stays for the edges.
+        writer.write_table("node_id", pa.table({"node_id": table.id_array()}))
+        writer.save("split", table.split)
+        writer.save("label", table.label)
+        table.split = table.label = None
         if features is None:
             dim = table.feature_dim()
             with _row_writer(writer, "features", n, dim) as out:
-                table.copy_features(out, chunk_bytes)
+                table.copy_features(out, plan.chunk_bytes)
         else:
-            dim = copy_npy_features(features, n, lambda d: _row_writer(writer, "features", n, d), chunk_bytes)
-        writer.write_table("node_id", pa.table({"node_id": table.ids}))
-        writer.save("split", table.split)
-        writer.save("label", table.label)
-        pa.default_memory_pool().release_unused()  # Arrow's pool keeps what the table reads freed
+            dim = copy_npy_features(features, n, lambda d: _row_writer(writer, "features", n, d),
+                                    plan.chunk_bytes)
         con = None
-        if duck_bytes:
-            con = _duckdb(writer.scratch(), duck_bytes, threads)
-            register_ids(con, table.ids, index_dtype)
+        if plan.duckdb_bytes:
+            con = _duckdb(writer.scratch(), plan.duckdb_bytes, threads)
+            register_ids(con, table.id_array(), index_dtype)
             batches = duckdb_rows(con, partitions, index_dtype, BATCH_ROWS, drop_unknown)
         else:
             def unmapped():  # DuckDB only to locate the first bad row for the message
                 con = _duckdb(writer.scratch(), DUCKDB_MIN, threads)
-                register_ids(con, table.ids, index_dtype)
+                register_ids(con, table.read_ids(), index_dtype)
                 explain_unmapped(con, partitions)
 
-            ids = IdTable(table.ids.to_numpy())
-            batches = hashed_rows(partitions, ids, BATCH_ROWS, drop_unknown, unmapped,
+            # The generator holds the only reference to the id map, so it is freed when the scan
+            # ends and the CSR build has its memory.
+            id_table, table.id_table, table.ids = table.id_table, None, None
+            batches = hashed_rows(partitions, id_table, BATCH_ROWS, drop_unknown, unmapped,
                                   lambda: explain_weight(partitions))
+            del id_table
+        pa.default_memory_pool().release_unused()  # Arrow's pool keeps the node table's batches
         try:
-            counts = build_csr(batches, partitions, n, index_dtype, writer, edge_bytes=edge_bytes)
+            counts = build_csr(batches, partitions, n, index_dtype, writer, edge_bytes=plan.edge_bytes)
         # DuckDB errors met mid-stream arrive as Arrow's OSError; pyarrow's own reads raise ArrowException
         except (duckdb.Error, OSError, pa.ArrowException) as exc:
             raise scan_error(exc, partitions, budget) from None
@@ -112,9 +119,28 @@ def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, thr
     return summary
 
 
-# Bytes per node the stage holds: the id map (id + index), split, label, entry counts and row
-# pointers (45 B) plus what reading the node table and its feature batches leaves resident in
-# the allocators (measured: 20M nodes held ~1.0 GB more than the arrays before the edge scan).
+# Plans are made from the node table's metadata before any column is read. On the hash path
+# (integer ids) the phases run one after the other and hold, per node:
+# - reading the node table: ids, split and label (LOAD_NODE_BYTES) and the id hash table
+#   (``table_bytes``), no edges;
+# - the edge scan: the id hash table and the entry counts (``count_dtype``), beside the edges'
+#   share (the mapped rows, in memory or spilled);
+# - the CSR build: the counts plus row pointers and kept counts (and the in-memory path's
+#   compacted row pointers): BUILD_NODE_BYTES beside the counts, with the edges' share.
+# Measured (`bigprune ingest` on the scale ladder's inputs, VmRSS sampled every 0.1 s, 4 GiB):
+# at 40M nodes the load peaked at 1893 MiB against 1564 MiB of arrays and 208 MiB after the
+# imports, the scan at ~1440 MiB against 1068 MiB; at 4M nodes the same gaps were 158 and
+# ~170 MiB. What the allocators keep is a few batches' worth, not a share of each node: the
+# fixed overhead, SCAN_SLACK and the batch allowance cover it, and NODE_SLACK is a margin.
+LOAD_NODE_BYTES = 17
+BUILD_NODE_BYTES = 24
+NODE_SLACK = 4
+# pyarrow's read-ahead (``idrows.READ_BUFFER`` a column) and decoded batches of the partitions.
+SCAN_SLACK = 64 * MIB
+# The DuckDB path (string ids): the id map (id + index), split, label, entry counts and row
+# pointers (45 B) plus what reading the node table left resident in the allocators (measured
+# when the table was read whole: 20M nodes held ~1.0 GB more than the arrays before the edge
+# scan; not measured again since it is read in batches).
 NODE_BYTES = 80
 # What DuckDB's hash join needs per node of the id map, and at least, to stream the join; its
 # resident set runs about this much above its memory_limit (measured on 2 threads).
@@ -122,30 +148,46 @@ DUCKDB_NODE_BYTES = 64
 DUCKDB_MIN = 256 * MIB
 DUCKDB_SLACK = 160 * MIB
 BATCH_ROWS = 1 << 20
-# pyarrow decodes a whole row group before slicing it into batches, and the id table's build
-# holds a copy of the ids: room for both on the hash path (measured: 20M nodes, 5M-row groups).
-HASH_SLACK = 256 * MIB
+MIN_EDGE_BYTES = 64 * MIB  # the least share the edge build works with
+
+
+class Plan(NamedTuple):
+    """How the budget is split: DuckDB's memory limit (0: ids mapped by the hash table), the edge
+    build's share, and the feature copy's chunk."""
+
+    duckdb_bytes: int
+    edge_bytes: int
+    chunk_bytes: int
 
 
 def _plan(budget, nodes, edge_rows, hash_bytes=0):
-    """Split the budget: DuckDB's limit, the edge build's share, the feature copy's chunk.
+    """Split the budget between the stage's phases; exit 3 up front when it cannot fit.
 
-    With ``hash_bytes`` (the id hash table of integer ids) the ids are mapped without DuckDB,
-    whose limit is then 0, as long as the build keeps its share; else DuckDB maps them.
+    With ``hash_bytes`` (the id hash table of integer ids) the ids are mapped without DuckDB;
+    else DuckDB maps them within its own limit.
     """
     spare = working_memory(budget, "ingest")
+    batch = BATCH_ROWS * 48
     if hash_bytes:
-        edge_bytes = spare - hash_bytes - HASH_SLACK - nodes * NODE_BYTES - BATCH_ROWS * 48
-        if edge_bytes >= 64 * MIB:
-            return 0, edge_bytes, max(16 * MIB, edge_bytes // 4)
+        counts = nodes * np.dtype(count_dtype(edge_rows)).itemsize
+        # The edge scan and the CSR build hold these beside the edges' share; reading the node
+        # table, before either, holds no edges.
+        held = max(hash_bytes + counts + batch + SCAN_SLACK, counts + nodes * BUILD_NODE_BYTES)
+        load = hash_bytes + nodes * LOAD_NODE_BYTES + batch
+        return _split(budget, nodes, spare, 0, held + nodes * NODE_SLACK, load + nodes * NODE_SLACK)
     duck = min(max(DUCKDB_MIN, nodes * DUCKDB_NODE_BYTES), max(DUCKDB_MIN, spare // 3))
-    held = duck + DUCKDB_SLACK + nodes * NODE_BYTES + BATCH_ROWS * 48  # 48 B per row of Arrow batches
-    edge_bytes = spare - held
-    if edge_bytes < 64 * MIB:
-        need = held + 64 * MIB + FIXED_OVERHEAD
+    return _split(budget, nodes, spare, duck, duck + DUCKDB_SLACK + nodes * NODE_BYTES + batch)
+
+
+def _split(budget, nodes, spare, duckdb_bytes, held, alone=0):
+    """The plan leaving ``spare - held`` bytes to the edges; exit 3 if that is too little or if
+    ``alone`` (what a phase without edges holds) does not fit."""
+    need = max(held + MIN_EDGE_BYTES, alone)
+    if spare < need:
         raise BudgetError(f"--memory-budget {format_size(budget)} is too small to ingest {nodes:,} nodes: "
-                          f"use at least {format_size(need, up=True)}")
-    return duck, edge_bytes, max(16 * MIB, edge_bytes // 4)
+                          f"use at least {format_size(need + FIXED_OVERHEAD, up=True)}")
+    edge_bytes = spare - held
+    return Plan(duckdb_bytes, edge_bytes, max(16 * MIB, edge_bytes // 4))
 
 
 class _row_writer:

@@ -166,7 +166,7 @@ def test_row_block_build_equals_in_memory(tmp_path, monkeypatch, weighted, edge_
 
     g, _ = karate_files(tmp_path, weighted=weighted)
     plan = ingest_module._plan
-    monkeypatch.setattr(ingest_module, "_plan", lambda *a: (plan(*a)[0], edge_bytes, plan(*a)[2]))
+    monkeypatch.setattr(ingest_module, "_plan", lambda *a: plan(*a)._replace(edge_bytes=edge_bytes))
     summary = ingest(tmp_path / "edges", tmp_path / "nodes.parquet", tmp_path / "store")
     assert summary["row_blocks"] > 1 and summary["undirected_edges"] == 78
     store = Store(tmp_path / "store")
@@ -176,3 +176,115 @@ def test_row_block_build_equals_in_memory(tmp_path, monkeypatch, weighted, edge_
     theirs = nx.to_scipy_sparse_array(g, nodelist=range(34), weight="weight" if weighted else None)
     assert abs(sp.csr_matrix((data, indices, indptr), shape=(34, 34)) - theirs).max() == 0
     assert all(np.all(np.diff(indices[indptr[r]:indptr[r + 1]]) > 0) for r in range(34))
+
+
+def _random_graph_files(root, weighted):
+    """3,000 nodes with random int64 ids, 30,000 edge rows (repeats, reversals, loops) in 3 files."""
+    rng = np.random.default_rng(11)
+    n, rows = 3000, 30_000
+    ids = rng.choice(np.int64(1) << 50, n, replace=False)
+    u, v = rng.integers(0, n, rows), rng.integers(0, n, rows)
+    u[:500], v[:500] = v[500:1000], u[500:1000]  # repeats, reversed
+    v[1000:1100] = u[1000:1100]  # self loops
+    split = np.where(rng.random(n) < 0.3, "train", np.where(rng.random(n) < 0.3, "test", None))
+    label = pa.array(np.where(split == "train", rng.integers(0, 4, n), None), pa.int64())
+    features = pa.FixedSizeListArray.from_arrays(pa.array(rng.normal(size=3 * n).astype(np.float32)), 3)
+    pq.write_table(pa.table({"node_id": ids, "split": pa.array(split, pa.string()), "label": label,
+                             "features": features}), root / "nodes.parquet", row_group_size=700)
+    (root / "edges").mkdir()
+    w = rng.random(rows).astype(np.float32) + 0.01
+    for part in range(3):
+        cols = {"src": ids[u[part::3]], "dst": ids[v[part::3]]}
+        if weighted:
+            cols["weight"] = w[part::3]
+        pq.write_table(pa.table(cols), root / "edges" / f"p{part}.parquet", row_group_size=4000)
+    return n, u, v
+
+
+def _stage_files(path):
+    """The graph stage's files, name -> bytes (the manifest, which holds times, left out)."""
+    store = Store(path)
+    return {p.name: p.read_bytes() for p in sorted(store.stage_dir("graph").iterdir()) if p.is_file()}
+
+
+@pytest.mark.parametrize("weighted", [False, True])
+def test_small_batches_and_edge_share_store_the_same_bytes(tmp_path, monkeypatch, weighted):
+    """Node table batches of 7 rows, 1 KiB feature batches and a tiny edge share (many row
+    blocks) must write the very same store as the defaults."""
+    ingest_module = importlib.import_module("bigprune.ingest")
+    nodetable = importlib.import_module("bigprune.nodetable")
+    n, u, v = _random_graph_files(tmp_path, weighted)
+    args = (tmp_path / "edges", tmp_path / "nodes.parquet")
+    generous = ingest(*args, tmp_path / "generous")
+    assert generous["row_blocks"] == 1
+    plan = ingest_module._plan
+    monkeypatch.setattr(ingest_module, "_plan", lambda *a: plan(*a)._replace(edge_bytes=20_000))
+    monkeypatch.setattr(nodetable, "READ_ROWS", 7)
+    monkeypatch.setattr(nodetable, "FEATURE_BATCH_BYTES", 1024)
+    small = ingest(*args, tmp_path / "small")
+    assert small["row_blocks"] > 10
+    assert _stage_files(tmp_path / "generous") == _stage_files(tmp_path / "small")
+    store = Store(tmp_path / "small")
+    indptr, indices = store.load("graph", "indptr"), store.load("graph", "indices")
+    # reference: scipy.sparse sums the repeated entries of the symmetrised COO edge list; the
+    # pattern of nonzeros is the graph without loops
+    keep = u != v
+    rows, cols = np.r_[u[keep], v[keep]], np.r_[v[keep], u[keep]]
+    a = sp.coo_matrix((np.ones(len(rows)), (rows, cols)), shape=(n, n)).tocsr()
+    a.sort_indices()
+    np.testing.assert_array_equal(indptr, a.indptr)
+    np.testing.assert_array_equal(indices, a.indices)
+    # reference: pyarrow's own read of the node table
+    table = pq.read_table(tmp_path / "nodes.parquet")
+    np.testing.assert_array_equal(store.load("graph", "features"),
+                                  np.asarray(table.column("features").to_pylist(), dtype=np.float32))
+    assert store.table("graph", "node_id").column("node_id").to_pylist() == table.column("node_id").to_pylist()
+
+
+def test_errors_name_the_row_across_batches(tmp_path, capsys, monkeypatch):
+    """With 5-row batches a bad value in a later batch is still named by its row in the file."""
+    monkeypatch.setattr(importlib.import_module("bigprune.nodetable"), "READ_ROWS", 5)
+    karate_files(tmp_path)
+    table = pq.read_table(tmp_path / "nodes.parquet")
+    label = table.column("label").to_pylist()
+    split = table.column("split").to_pylist()
+    row = next(i for i in range(20, 34) if split[i] == "train")
+    label[row] = -4
+    _rewrite(tmp_path / "nodes.parquet", label=pa.array(label, pa.int64()))
+    code = main(["ingest", "--edges", str(tmp_path / "edges"), "--nodes", str(tmp_path / "nodes.parquet"),
+                 "--store", str(tmp_path / "store"), "--quiet"])
+    assert code == 2
+    # reference: the row index pyarrow reads the bad label at
+    assert f"column 'label' row {row} holds -4" in capsys.readouterr().err
+
+
+def test_id_table_finds_a_repeated_id():
+    from bigprune.idrows import IdTable
+
+    rng = np.random.default_rng(5)
+    ids = rng.choice(np.int64(1) << 60, 10_000, replace=False)
+    assert IdTable(ids).repeated is None
+    ids[7_000] = ids[1_234]
+    # reference: numpy.unique's counts name the one id given twice
+    values, counts = np.unique(ids, return_counts=True)
+    assert IdTable(ids).repeated == int(values[counts > 1][0])
+
+
+def test_plan_refuses_up_front_and_accepts_the_figure_it_names():
+    from bigprune.errors import BudgetError
+    from bigprune.idrows import table_bytes
+    from bigprune.memory import parse_size
+
+    ingest_module = importlib.import_module("bigprune.ingest")
+    nodes, rows = 40_000_000, 200_000_000
+    with pytest.raises(BudgetError) as refused:
+        ingest_module._plan(parse_size("1GiB"), nodes, rows, table_bytes(nodes))
+    message = str(refused.value)
+    assert "too small to ingest 40,000,000 nodes: use at least" in message
+    figure = parse_size(message.rsplit("use at least ", 1)[1].replace(" ", ""))
+    plan = ingest_module._plan(figure, nodes, rows, table_bytes(nodes))
+    assert plan.duckdb_bytes == 0 and plan.edge_bytes >= 64 << 20
+    with pytest.raises(BudgetError):
+        ingest_module._plan(figure - (110 << 20), nodes, rows, table_bytes(nodes))  # > the 0.1 GiB rounding
+    # the scale the 4 GiB default is meant for: 40M nodes and 200M edge rows are planned, not refused
+    assert ingest_module._plan(parse_size("4GiB"), nodes, rows, table_bytes(nodes)).edge_bytes > 1 << 30

@@ -7,7 +7,7 @@ from numba import njit, prange
 def count_endpoints(u, v, counts):
     """Add each non-loop edge to both endpoints' counts; return the number of self loops.
 
-    u, v : int64 (e,), read. counts : int64 (n,), filled (incremented).
+    u, v : int32/int64 (e,), read. counts : int32/int64 (n,), filled (incremented).
     """
     loops = 0
     for i in range(u.shape[0]):
@@ -118,7 +118,7 @@ def scatter_directed(rows, cols, w, first_row, cursor, indices, weights):
 @njit(cache=True)
 def block_bounds(counts, limit):
     """Split rows into consecutive blocks holding at most ``limit`` entries each (a row larger
-    than ``limit`` gets a block of its own). counts : int64 (n,), read. Returns int64 bounds."""
+    than ``limit`` gets a block of its own). counts : int32/int64 (n,), read. Returns int64 bounds."""
     bounds = [0]
     total = 0
     for r in range(counts.shape[0]):
@@ -128,3 +128,37 @@ def block_bounds(counts, limit):
         total += counts[r]
     bounds.append(counts.shape[0])
     return np.array(bounds, dtype=np.int64)
+
+
+@njit(cache=True)
+def split_by_block(u, v, w, bounds, rows, cols, weights, cuts):
+    """Both directions of each non-loop edge, grouped by the row block of their row (stable).
+
+    u, v : int (e,), read. w : float32 (e,) or (0,) when unweighted, read.
+    bounds : int64 (blocks + 1,), read; every row lies in ``bounds[0] .. bounds[-1] - 1``.
+    rows, cols : int (2e,), filled. weights : float32 (2e,) or (0,), filled.
+    cuts : int64 (blocks + 1,), filled: block b's entries are ``cuts[b]:cuts[b + 1]``; the
+    entries past ``cuts[-1]`` (two per self loop) are unused.
+    """
+    weighted = weights.shape[0] > 0
+    blocks = bounds.shape[0] - 1
+    cuts[:] = 0
+    for i in range(u.shape[0]):
+        if u[i] != v[i]:
+            cuts[np.searchsorted(bounds, u[i], side="right")] += 1
+            cuts[np.searchsorted(bounds, v[i], side="right")] += 1
+    for b in range(blocks):
+        cuts[b + 1] += cuts[b]
+    cursor = cuts[:blocks].copy()
+    for i in range(u.shape[0]):
+        a, c = u[i], v[i]
+        if a == c:
+            continue
+        for r, col in ((a, c), (c, a)):
+            b = np.searchsorted(bounds, r, side="right") - 1
+            p = cursor[b]
+            rows[p] = r
+            cols[p] = col
+            if weighted:
+                weights[p] = w[i]
+            cursor[b] = p + 1

@@ -23,22 +23,34 @@ def _home(key, slots):
 
 @njit(cache=True)
 def build_table(ids, table):
-    """Insert ``ids[i] -> i`` for every i; ids must be unique.
+    """Insert ``ids[i] -> i`` for every i; return the first row whose id is already in, or -1.
 
-    ids : int64 (n,), read. table : uint32 (slots, 3), filled; n < slots < 2**32.
+    ids : int64 (n,), read. table : uint32 (slots, 3), filled; n < slots < 2**32. A repeated id
+    keeps its first row.
     """
     slots = table.shape[0]
     table[:, 2] = FREE
+    repeated = -1
     for i in range(ids.shape[0]):
         key = np.uint64(ids[i])
+        low, high = np.uint32(key & _LOW32), np.uint32(key >> _SHIFT32)
         slot = _home(ids[i], slots)
+        seen = False
         while table[slot, 2] != FREE:
+            if table[slot, 0] == low and table[slot, 1] == high:
+                seen = True
+                break
             slot += 1
             if slot == slots:
                 slot = 0
-        table[slot, 0] = np.uint32(key & _LOW32)
-        table[slot, 1] = np.uint32(key >> _SHIFT32)
+        if seen:
+            if repeated == -1:
+                repeated = i
+            continue
+        table[slot, 0] = low
+        table[slot, 1] = high
         table[slot, 2] = np.uint32(i)
+    return repeated
 
 
 @njit(cache=True, parallel=True)
