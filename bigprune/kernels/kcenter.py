@@ -27,6 +27,21 @@ def _exact(points, t, row, bound):
 
 
 @njit(cache=True)
+def _measure(points, t, row, slot, current, dist, assign):
+    """Target ``t`` against one centre, exactly: if closer than ``current``, record it in
+    ``dist``/``assign`` (slot ``slot``). Returns the target's distance after it."""
+    bound = current * current
+    total = _exact(points, t, row, bound)
+    if total < bound:
+        closer = np.sqrt(total)
+        if closer < current:
+            dist[t] = closer
+            assign[t] = slot
+            return closer
+    return current
+
+
+@njit(cache=True)
 def apply_centres(points, to_centre, mu, radius, top, rows, slots, dist, assign):
     """Lower the group's distances with the centres ``rows``, one centre at a time.
 
@@ -52,16 +67,9 @@ def apply_centres(points, to_centre, mu, radius, top, rows, slots, dist, assign)
         if gap - radius >= top:
             continue
         for t in range(points.shape[0]):
-            current = dist[t]
-            if gap - to_centre[t] < current:
-                bound = current * current
-                total = _exact(points, t, rows[c], bound)
+            if gap - to_centre[t] < dist[t]:
+                _measure(points, t, rows[c], slots[c], dist[t], dist, assign)
                 computed += 1
-                if total < bound:
-                    closer = np.sqrt(total)
-                    if closer < current:
-                        dist[t] = closer
-                        assign[t] = slots[c]
     return computed
 
 
@@ -96,15 +104,8 @@ def screen_centres(points, approx, tnorm, cnorm, rows, slots, tol, dist, assign)
             slack = tol * (tnorm[t] + cnorm[c] + 2.0 * np.sqrt(tnorm[t] * cnorm[c])) + 1e-13 * (tnorm[t] + cnorm[c])
             if np.float64(approx[t, c]) - slack > limit:
                 continue
-            bound = current * current
-            total = _exact(points, t, rows[c], bound)
+            current = _measure(points, t, rows[c], slots[c], current, dist, assign)
             computed += 1
-            if total < bound:
-                closer = np.sqrt(total)
-                if closer < current:
-                    current = closer
-                    dist[t] = closer
-                    assign[t] = slots[c]
     return computed
 
 
