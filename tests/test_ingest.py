@@ -288,3 +288,26 @@ def test_plan_refuses_up_front_and_accepts_the_figure_it_names():
         ingest_module._plan(figure - (110 << 20), nodes, rows, table_bytes(nodes))  # > the 0.1 GiB rounding
     # the scale the 4 GiB default is meant for: 40M nodes and 200M edge rows are planned, not refused
     assert ingest_module._plan(parse_size("4GiB"), nodes, rows, table_bytes(nodes)).edge_bytes > 1 << 30
+
+
+@pytest.mark.parametrize("n", [5, 70_000, 300_001])
+def test_split_by_block_is_a_stable_sort_of_both_directions_by_row_block(n):
+    from bigprune.kernels.csr import split_by_block
+
+    rng = np.random.default_rng(n)
+    u = rng.integers(0, n, 5000).astype(np.int32)
+    v = np.where(rng.random(5000) < 0.05, u, rng.integers(0, n, 5000)).astype(np.int32)  # some loops
+    inner = np.unique(rng.integers(1, n, 6)) if n > 6 else np.array([2], dtype=np.int64)
+    bounds = np.concatenate([[0], inner, [n]]).astype(np.int64)
+    rows, cols = np.empty(10_000, np.int32), np.empty(10_000, np.int32)
+    cuts = np.empty(len(bounds), dtype=np.int64)
+    split_by_block(u, v, np.zeros(0, np.float32), bounds, rows, cols, np.zeros(0, np.float32), cuts)
+    keep = u != v
+    ref_rows = np.stack([u[keep], v[keep]], axis=1).ravel()
+    ref_cols = np.stack([v[keep], u[keep]], axis=1).ravel()
+    block = np.searchsorted(bounds, ref_rows, side="right") - 1
+    order = np.argsort(block, kind="stable")  # reference: numpy's stable sort by block
+    used = cuts[-1]
+    np.testing.assert_array_equal(rows[:used], ref_rows[order])
+    np.testing.assert_array_equal(cols[:used], ref_cols[order])
+    np.testing.assert_array_equal(cuts, np.searchsorted(block[order], np.arange(len(bounds)), side="left"))

@@ -131,6 +131,29 @@ def block_bounds(counts, limit):
 
 
 @njit(cache=True)
+def _block_table(bounds, shift):
+    """table[k] = the block holding row ``k << shift``: one look-up and a step or two finds any
+    row's block (blocks are consecutive row ranges), where a binary search per entry was the
+    bucketing pass's largest cost."""
+    last = bounds[-1] - 1
+    table = np.empty((last >> shift) + 1, dtype=np.int64)
+    b = 0
+    for k in range(table.shape[0]):
+        while (k << shift) >= bounds[b + 1]:
+            b += 1
+        table[k] = b
+    return table
+
+
+@njit(cache=True)
+def _block_of(r, bounds, table, shift):
+    b = table[r >> shift]
+    while r >= bounds[b + 1]:
+        b += 1
+    return b
+
+
+@njit(cache=True)
 def split_by_block(u, v, w, bounds, rows, cols, weights, cuts):
     """Both directions of each non-loop edge, grouped by the row block of their row (stable).
 
@@ -142,11 +165,15 @@ def split_by_block(u, v, w, bounds, rows, cols, weights, cuts):
     """
     weighted = weights.shape[0] > 0
     blocks = bounds.shape[0] - 1
+    shift = 0
+    while (bounds[-1] >> shift) > 65536:  # a table of at most 64K entries stays in cache
+        shift += 1
+    table = _block_table(bounds, shift)
     cuts[:] = 0
     for i in range(u.shape[0]):
         if u[i] != v[i]:
-            cuts[np.searchsorted(bounds, u[i], side="right")] += 1
-            cuts[np.searchsorted(bounds, v[i], side="right")] += 1
+            cuts[_block_of(u[i], bounds, table, shift) + 1] += 1
+            cuts[_block_of(v[i], bounds, table, shift) + 1] += 1
     for b in range(blocks):
         cuts[b + 1] += cuts[b]
     cursor = cuts[:blocks].copy()
@@ -155,7 +182,7 @@ def split_by_block(u, v, w, bounds, rows, cols, weights, cuts):
         if a == c:
             continue
         for r, col in ((a, c), (c, a)):
-            b = np.searchsorted(bounds, r, side="right") - 1
+            b = _block_of(r, bounds, table, shift)
             p = cursor[b]
             rows[p] = r
             cols[p] = col
