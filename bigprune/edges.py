@@ -1,4 +1,7 @@
 """Streaming the edge partitions: DuckDB id mapping, checks, and the CSR build."""
+import errno
+import os
+
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute  # noqa: F401  (pa.compute)
@@ -154,12 +157,19 @@ def scan_error(exc, edges, budget):
     """The error to raise for a DuckDB failure while scanning the partitions.
 
     Out of memory is the budget's fault (exit 3); a damaged file is named (exit 2); a failed
-    system call (``errno`` set: disk full, ...) and anything else come back unchanged.
+    system call (``errno`` set: disk full, ...) and anything else come back unchanged, except
+    that DuckDB's own report of a full disk under its spill files becomes the ENOSPC
+    ``OSError`` that the command line turns into exit 3.
     """
     import duckdb
 
     if isinstance(exc, OSError) and exc.errno is not None:
         return exc
+    full = os.strerror(errno.ENOSPC)
+    # A full spill disk reaches DuckDB as "failed to offload data block", an Out of Memory Error
+    # that blames 'max_temp_directory_size' (seen with a 1 MiB tmpfs), or as a failed write.
+    if isinstance(exc, duckdb.Error) and ("max_temp_directory_size" in str(exc) or full in str(exc)):
+        return OSError(errno.ENOSPC, full, "DuckDB's spill files in the store's .staging folder")
     if isinstance(exc, duckdb.OutOfMemoryException) or "Out of Memory Error" in str(exc):
         return BudgetError(f"--memory-budget {format_size(budget)}: DuckDB ran out of memory joining "
                            f"{edges.rows:,} edge rows; raise the budget")

@@ -311,3 +311,31 @@ def test_split_by_block_is_a_stable_sort_of_both_directions_by_row_block(n):
     np.testing.assert_array_equal(rows[:used], ref_rows[order])
     np.testing.assert_array_equal(cols[:used], ref_cols[order])
     np.testing.assert_array_equal(cuts, np.searchsorted(block[order], np.arange(len(bounds)), side="left"))
+
+
+def test_duckdb_spilling_onto_a_full_disk_is_reported_as_a_full_disk(tmp_path):
+    # A real DuckDB sort forced to spill into a 1 MiB tmpfs (root only; skipped elsewhere).
+    import errno
+    import subprocess
+
+    import duckdb
+
+    from bigprune.edges import scan_error
+
+    disk = tmp_path / "disk"
+    disk.mkdir()
+    if subprocess.run(["mount", "-t", "tmpfs", "-o", "size=1M", "tmpfs", str(disk)],
+                      capture_output=True).returncode != 0:
+        pytest.skip("cannot mount a tmpfs")
+    try:
+        con = duckdb.connect()
+        for setting in ("memory_limit = '40MB'", f"temp_directory = '{disk}'", "threads = 1"):
+            con.execute(f"SET {setting}")
+        with pytest.raises(duckdb.Error) as caught:
+            con.execute("SELECT (i * 7919) % 10000019 AS a, random() AS b FROM range(20000000) t(i) "
+                        "ORDER BY a").fetch_arrow_table()
+        con.close()
+    finally:
+        subprocess.run(["umount", str(disk)], check=True)
+    error = scan_error(caught.value, None, 4 << 30)
+    assert isinstance(error, OSError) and error.errno == errno.ENOSPC
