@@ -144,11 +144,8 @@ def _constrain(store, label, whole_pool, budget, radius, initial, include, exclu
 
 def parse_budget(budget, pool):
     """The number of nodes to pick from a fraction (0 < B < 1) or a count (1 <= B <= pool)."""
-    try:
-        value = float(budget) if not isinstance(budget, bool) else math.nan
-    except (TypeError, ValueError):
-        value = math.nan
-    if not math.isfinite(value) or value <= 0 or (value >= 1 and value != int(value)):
+    value = fraction_or_count(budget)
+    if value is None:
         raise InputError(f"--budget {budget}: use a fraction between 0 and 1 of the training pool "
                          f"or a whole count from 1 to {pool} (the pool size)")
     k = max(1, int(round(value * pool))) if value < 1 else int(value)
@@ -158,16 +155,24 @@ def parse_budget(budget, pool):
     return k
 
 
+def fraction_or_count(value):
+    """``value`` as a float that is a fraction in (0, 1) or a whole number >= 1, else None."""
+    try:
+        number = float(value) if not isinstance(value, bool) else math.nan
+    except (TypeError, ValueError):
+        return None
+    if not math.isfinite(number) or number <= 0 or (number >= 1 and number != int(number)):
+        return None
+    return number
+
+
 def parse_quota(value, k):
     """Per-class minimum from a count (>= 1) or a fraction of the budget ``k`` (rounded up).
 
     ``k`` is None in radius mode, where only a count makes sense.
     """
-    try:
-        number = float(value) if not isinstance(value, bool) else math.nan
-    except (TypeError, ValueError):
-        number = math.nan
-    if not math.isfinite(number) or number <= 0 or (number >= 1 and number != int(number)):
+    number = fraction_or_count(value)
+    if number is None:
         raise InputError(f"--min-per-class {value}: use a whole count >= 1 or a fraction of the "
                          f"budget between 0 and 1")
     if number >= 1:

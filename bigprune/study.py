@@ -29,6 +29,7 @@ from .memory import DEFAULT_BUDGET, FIXED_OVERHEAD, chunk_ranges, format_size, p
 from .powerlaw import fit_power_law, smallest_sufficient
 from .runtime import progress, set_threads
 from .schema import NO_LABEL, SPLIT_CODES
+from .select import fraction_or_count
 from .store import Store
 
 DEFAULT_BUDGETS = (0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1.0)
@@ -110,11 +111,8 @@ def parse_budgets(value):
         raise InputError("--budgets: give at least one budget, e.g. 0.01,0.1,1")
     budgets = []
     for item in items:
-        try:
-            number = float(item) if not isinstance(item, bool) else math.nan
-        except (TypeError, ValueError):
-            number = math.nan
-        if not math.isfinite(number) or number <= 0 or (number > 1 and number != int(number)):
+        number = fraction_or_count(item)
+        if number is None:
             raise InputError(f"--budgets {str(item).strip()}: use fractions in (0, 1] of the "
                              f"training pool (1 = the whole pool) or whole counts >= 2")
         budgets.append(number if number <= 1 else int(number))
