@@ -61,8 +61,8 @@ def side(args):
         rows += pq.read_table(Path(args.root) / "nodes.parquet").num_rows
         result = {"rows": rows}
     else:
-        from bigprune.ingest import ingest
-        from bigprune.runtime import set_quiet
+        from bigprune.ingestion.ingest import ingest
+        from bigprune.common.runtime import set_quiet
 
         set_quiet(True)
         result = ingest(Path(args.root) / "edges", Path(args.root) / "nodes.parquet", Path(args.root) / "store",

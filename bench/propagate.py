@@ -39,7 +39,7 @@ import numpy as np  # noqa: E402
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from bigprune.memory import parse_size  # noqa: E402
+from bigprune.common.memory import parse_size  # noqa: E402
 
 
 def main():
@@ -164,7 +164,7 @@ def power_law_csr(n, edges, gamma, order, rng):
 def write_store(path, indptr, indices, features):
     import pyarrow as pa
 
-    from bigprune.store import Store
+    from bigprune.common.store import Store
 
     n = indptr.shape[0] - 1
     with Store(path).begin("graph", params={"source": "bench/propagate.py"}) as writer:
@@ -193,9 +193,9 @@ def write_normalised(tmp, indptr, indices):
 
 def _run_bigprune(store, args):
     threads = args.threads
-    import bigprune.memory as memory
-    from bigprune.propagate import propagate
-    from bigprune.store import Store
+    import bigprune.common.memory as memory
+    from bigprune.propagation.propagate import propagate
+    from bigprune.common.store import Store
 
     # Warm up: load (or compile once) the kernels for the same dtypes on a tiny graph, both ways
     # (a budget of a few kB with no fixed overhead counted forces the grid).
@@ -235,8 +235,8 @@ def _run_scipy(store, args):
     """scipy's product alone, timed; the result is kept for the checks of each bigprune run."""
     import scipy.sparse as sp
 
-    from bigprune.memory import peak_rss
-    from bigprune.store import Store
+    from bigprune.common.memory import peak_rss
+    from bigprune.common.store import Store
 
     tmp = store.parent
     parts = [np.load(tmp / f"hat_{name}.npy") for name in ("data", "indices", "indptr")]
@@ -255,7 +255,7 @@ def _run_scipy(store, args):
 
 def _check(store, args):
     """The largest difference between bigprune's first hop and scipy's."""
-    from bigprune.store import Store
+    from bigprune.common.store import Store
 
     ours = Store(store).load("propagate", "hop_1")
     theirs = np.load(store.parent / "scipy_hop_1.npy", mmap_mode="r")

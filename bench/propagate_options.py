@@ -1,7 +1,7 @@
 """What ``--dtype float16`` and ``--restrict`` change, measured on the marketplace scenario.
 
 Generates the scenario (power-law degrees, department-clustered features, shifted targets; see
-``bigprune.scenario``), ingests it once, then propagates three copies of the store: float32,
+``bigprune.scenario.scenario``), ingests it once, then propagates three copies of the store: float32,
 float16, and float32 restricted to the rows later stages read. Reports, per hop, the float16
 error against float32 (relative Frobenius, worst row's relative L2, largest absolute), the
 k-center selection on each (radius, and overlap with the float32 one), and for the restricted run
@@ -27,11 +27,11 @@ import numpy as np  # noqa: E402
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from bigprune.ingest import ingest  # noqa: E402
-from bigprune.propagate import embedding, propagate  # noqa: E402
-from bigprune.runtime import set_quiet  # noqa: E402
-from bigprune.scenario import generate  # noqa: E402
-from bigprune.select import select  # noqa: E402
+from bigprune.ingestion.ingest import ingest  # noqa: E402
+from bigprune.propagation.propagate import embedding, propagate  # noqa: E402
+from bigprune.common.runtime import set_quiet  # noqa: E402
+from bigprune.scenario.scenario import generate  # noqa: E402
+from bigprune.selection.select import select  # noqa: E402
 
 WINDOW = 1 << 16  # rows compared at a time
 
@@ -79,7 +79,7 @@ def _run(tmp, args):
         print(f"kcenter 2% on {name}: radius {picks[name]['coverage']['radius']:.4f} vs "
               f"{picks['float32']['coverage']['radius']:.4f} (float32), {overlap:.1%} of the "
               f"float32 picks shared; propagate {seconds[name]:.1f} s vs {seconds['float32']:.1f} s")
-    from bigprune.store import Store
+    from bigprune.common.store import Store
 
     info = Store(stores["restricted"]).entry("propagate")["info"]
     through = Store(stores["restricted"]).load("propagate", "computed_through")

@@ -156,7 +156,7 @@ def main():
 
 
 def _bench(tmp, args):
-    from bigprune.scenario import generate
+    from bigprune.scenario.scenario import generate
 
     generate(tmp / "data", nodes=args.nodes, dim=16, days=2, parts_per_day=2, seed=args.seed)
     clean = []

@@ -52,9 +52,9 @@ def make_data(n, m, d, blobs, seed, latent=6):
 
 
 def run_ours(data, k, seed, threads):
-    from bigprune.kcenter import greedy
-    from bigprune.memory import peak_rss
-    from bigprune.runtime import set_threads
+    from bigprune.selection.kcenter import greedy
+    from bigprune.common.memory import peak_rss
+    from bigprune.common.runtime import set_threads
 
     set_threads(threads)
     candidates, targets = np.load(data / "candidates.npy"), np.load(data / "targets.npy")
@@ -69,7 +69,7 @@ def run_ours(data, k, seed, threads):
 def run_plain(data, k, steps):
     import faiss
 
-    from bigprune.memory import peak_rss
+    from bigprune.common.memory import peak_rss
 
     faiss.omp_set_num_threads(1)
     candidates, targets = np.load(data / "candidates.npy"), np.load(data / "targets.npy")

@@ -1,6 +1,6 @@
 """The ``bigprune`` command: parses options, calls one library function, prints a summary.
 
-Errors from the library arrive typed (``bigprune.errors``) and leave as one line on stderr with
+Errors from the library arrive typed (``bigprune.common.errors``) and leave as one line on stderr with
 exit status 2 (bad input or usage) or 3 (resources: the memory budget cannot work, or the disk
 is full).
 """
@@ -10,8 +10,8 @@ import json
 import sys
 
 from . import __version__
-from .errors import BigpruneError
-from .memory import DEFAULT_BUDGET
+from .common.errors import BigpruneError
+from .common.memory import DEFAULT_BUDGET
 
 EXAMPLES = {
     "demo": """examples:
@@ -164,7 +164,7 @@ def _parser():
 
 def _run(args):
     if args.command in ("run", "check", "status"):
-        from .job import check_job, run_job, store_status
+        from .job.job import check_job, run_job, store_status
 
         if args.command == "run":
             run_job(args.job, dry_run=args.dry_run)
@@ -175,31 +175,31 @@ def _run(args):
         return None
     opts = {"memory_budget": args.memory_budget, "threads": args.threads}
     if args.command == "demo":
-        from .demo import demo
+        from .scenario.demo import demo
 
         return demo(args.workdir, nodes=args.nodes, seed=args.seed, **opts)
     if args.command == "ingest":
-        from .ingest import ingest
+        from .ingestion.ingest import ingest
 
         return ingest(args.edges, args.nodes, args.store, features=args.features,
                       drop_unknown=args.drop_unknown, **opts)
     if args.command == "propagate":
-        from .propagate import propagate
+        from .propagation.propagate import propagate
 
         return propagate(args.store, hops=args.hops, norm=args.norm, dtype=args.dtype,
                          restrict=args.restrict, **opts)
     if args.command == "train":
-        from .train import train
+        from .learning.train import train
 
         return train(args.store, nodes_from=args.nodes_from, answers=args.answers, l2=args.l2, hop=args.hop, **opts)
     if args.command == "study":
-        from .study import study
+        from .learning.study import study
 
         summary = study(args.store, args.out, budgets=args.budgets, strategies=args.strategies,
                         repeats=args.repeats, answers=args.answers, tolerance=args.tolerance,
                         targets=args.targets, **opts)
         return {k: summary[k] for k in ("recommendation", "cells", "outputs", "seconds")}
-    from .select import select
+    from .selection.select import select
 
     report = select(args.store, args.strategy, args.budget, targets=args.targets, seed=args.seed,
                     out=args.out, include=args.include, exclude=args.exclude,
@@ -213,7 +213,7 @@ def main(argv=None):
     if args.command is None:
         parser.print_help()
         return 2
-    from .runtime import set_quiet
+    from .common.runtime import set_quiet
 
     set_quiet(args.quiet)
     try:

@@ -7,8 +7,8 @@ import pyarrow as pa
 import pytest
 import scipy.sparse as sp
 
-from bigprune.schema import NO_LABEL
-from bigprune.store import Store
+from bigprune.common.schema import NO_LABEL
+from bigprune.common.store import Store
 
 
 def write_graph_store(path, adjacency, features, split, label, node_ids=None, weighted=False):

@@ -19,7 +19,7 @@ import pyarrow.parquet as pq
 import pytest
 
 from bigprune.cli import main
-from bigprune.scenario import generate
+from bigprune.scenario.scenario import generate
 from conftest import tree_digest
 
 ROOT = Path(__file__).resolve().parents[1]

@@ -1,0 +1,494 @@
+"""The study: how the proxy's accuracy grows with the training-set size under each rule.
+
+For every rule, budget and repeat (a *cell*) the rule picks a subset of the training pool, the
+proxy (:mod:`bigprune.learning.proxy`) is trained on it in the selection embedding (the last propagated
+hop), and it is scored on held-out labelled nodes: the targets' answers when a file of them is
+given, else the ``valid`` split. Budget 1 is the full pool, the reference accuracy.
+
+Each finished cell is written atomically to ``OUT/cells/<cell>.json`` with a key over everything
+that decides its result, so a rerun skips cells whose key matches and a killed study resumes.
+Cells run in a process pool sized from the memory budget, one numba/FAISS/BLAS thread each.
+The outputs (table, fits, recommendation, plots, report) are rebuilt from the cells every run.
+"""
+import json
+import math
+import os
+import time
+from concurrent.futures import ProcessPoolExecutor, as_completed
+from contextlib import contextmanager
+from multiprocessing import get_context
+from pathlib import Path
+
+import numpy as np
+
+from ..common.errors import BudgetError, InputError
+from ..common.ids import lookup, read_id_file
+from ..common.fingerprint import key
+from ..common.memory import DEFAULT_BUDGET, FIXED_OVERHEAD, chunk_ranges, format_size, parse_size, \
+    rows_per_chunk
+from .powerlaw import fit_power_law, smallest_sufficient
+from ..common.runtime import progress, set_threads
+from ..common.schema import NO_LABEL, SPLIT_CODES
+from ..common.store import Store
+
+DEFAULT_BUDGETS = (0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1.0)
+DEFAULT_REPEATS = 3
+DEFAULT_TOLERANCE = 0.01
+DEFAULT_L2 = 1.0
+BOOTSTRAP = 1000
+FULL = "full-pool"  # the reference cell: every rule's subset at budget 1
+# Rules whose picks do not depend on the seed (the k-supplier greedy breaks ties by index and its
+# searches are exact; entropy's proxy starts from zero): their first repeat stands for all.
+SEED_FREE = frozenset({"kcenter", "degree", "pagerank", "entropy"})
+# Environment a worker process must start with so that BLAS and OpenMP pools hold one thread.
+ONE_THREAD = {name: "1" for name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS",
+                                     "NUMBA_NUM_THREADS")}
+
+
+def study(store, out, budgets=DEFAULT_BUDGETS, strategies=None, repeats=DEFAULT_REPEATS,
+          answers=None, tolerance=DEFAULT_TOLERANCE, targets="test", l2=DEFAULT_L2,
+          memory_budget=DEFAULT_BUDGET, threads=None):
+    """Run (or resume) the study and write its outputs under ``out``.
+
+    Parameters
+    ----------
+    store : Store or path, with committed graph and propagate stages.
+    out : path of a directory outside the store (created).
+    budgets : sequence or comma-separated text of fractions in (0, 1] of the pool or whole
+        counts >= 2; 1 is the full pool and is always run (it is the reference).
+    strategies : sequence or comma-separated text of rule names (default: every rule).
+    repeats : int >= 1; repeat ``r`` selects with seed ``r``.
+    answers : Parquet file (node_id, label) of held-out nodes, or None for the ``valid`` split.
+    tolerance : accuracy (0.01 = one point) below the full pool that still counts as enough.
+    targets : the nodes the rules cover, as in ``select``.
+    l2 : the proxy's L2 penalty (see :func:`bigprune.learning.proxy.fit_proxy`).
+
+    Returns
+    -------
+    dict : ``recommendation``, ``fits``, ``cells`` (run and skipped counts), ``outputs``.
+    """
+    from ..selection.strategies import STRATEGIES
+
+    started = time.perf_counter()
+    store = store if isinstance(store, Store) else Store(store)
+    rules = parse_strategies(strategies, STRATEGIES)
+    given = parse_budgets(budgets)
+    repeats = _check_repeats(repeats)
+    tolerance = _check_number(tolerance, "--tolerance", 0.0, 1.0, "a number from 0 to below 1, e.g. 0.01")
+    l2 = _check_number(l2, "--l2", 0.0, math.inf, "a number >= 0")
+    out = _check_out(out, store)
+    from ..selection.select import TARGETS
+
+    if targets not in TARGETS:
+        raise InputError(f"--targets {targets}: unknown; use one of {', '.join(TARGETS)}")
+    memory = parse_size(memory_budget)
+    threads = set_threads(threads)
+    setup = _setup(store, answers, given, rules, repeats, targets, l2)
+    summary = _study(setup, out, tolerance, memory, threads)
+    summary["seconds"] = round(time.perf_counter() - started, 3)
+    return summary
+
+
+def parse_strategies(value, known):
+    """Rule names from a sequence or comma-separated text; every rule in ``known`` when None."""
+    if value is None:
+        return list(known)
+    names = [s.strip() for s in value.split(",")] if isinstance(value, str) else list(value)
+    if not names or any(not n for n in names):
+        raise InputError(f"--strategies {value!r}: give rule names separated by commas, from "
+                         f"{', '.join(known)}")
+    for name in names:
+        if name not in known:
+            raise InputError(f"--strategies {name}: unknown rule; use any of {', '.join(known)}")
+    return list(dict.fromkeys(names))
+
+
+def parse_budgets(value):
+    """Budgets from a sequence or comma-separated text: floats in (0, 1] or ints >= 2."""
+    from ..selection.select import fraction_or_count  # here: selection imports learning (hardness -> proxy)
+
+    items = value.split(",") if isinstance(value, str) else list(value)
+    if not items:
+        raise InputError("--budgets: give at least one budget, e.g. 0.01,0.1,1")
+    budgets = []
+    for item in items:
+        number = fraction_or_count(item)
+        if number is None:
+            raise InputError(f"--budgets {str(item).strip()}: use fractions in (0, 1] of the "
+                             f"training pool (1 = the whole pool) or whole counts >= 2")
+        budgets.append(number if number <= 1 else int(number))
+    return budgets
+
+
+def recommend(rows, tolerance):
+    """The smallest sufficient budget of each rule and the rule that needs the fewest nodes.
+
+    rows : dicts with ``rule``, ``budget``, ``training_nodes``, ``accuracy``; the full pool is
+    the largest ``training_nodes``. A budget is sufficient when its mean accuracy over repeats is
+    at least the full pool's mean accuracy minus ``tolerance``.
+    """
+    pool = max(r["training_nodes"] for r in rows)
+    full = float(np.mean([r["accuracy"] for r in rows if r["training_nodes"] == pool
+                          and r["rule"] == rows[0]["rule"]]))
+    per_rule = {}
+    for rule in dict.fromkeys(r["rule"] for r in rows):
+        mine = [r for r in rows if r["rule"] == rule]
+        sizes = sorted({r["training_nodes"] for r in mine})
+        means = [float(np.mean([r["accuracy"] for r in mine if r["training_nodes"] == n])) for n in sizes]
+        enough = smallest_sufficient(np.array(sizes), np.array(means), full, tolerance)
+        if enough is None:
+            per_rule[rule] = None
+            continue
+        at = sizes.index(int(enough))
+        budget = next(r["budget"] for r in mine if r["training_nodes"] == sizes[at])
+        fills = [r["fill_picks"] for r in mine if r["training_nodes"] == sizes[at]
+                 and not math.isnan(r.get("fill_picks", math.nan))]  # NaN: not recorded
+        per_rule[rule] = {"budget": budget, "training_nodes": sizes[at], "accuracy": means[at],
+                          "fill_picks": int(round(np.mean(fills))) if fills else 0}
+    reached = [(v["training_nodes"], -v["accuracy"], rule) for rule, v in per_rule.items() if v]
+    best = min(reached)[2] if reached else None
+    return {"full_accuracy": full, "pool": pool, "tolerance": tolerance, "rules": per_rule,
+            "best": best}
+
+
+def fit_rules(rows, bootstrap=BOOTSTRAP):
+    """``error ≈ a · n^(-alpha)`` per rule over all its cells (the full pool included)."""
+    fits = {}
+    for rule in dict.fromkeys(r["rule"] for r in rows):
+        mine = [r for r in rows if r["rule"] == rule]
+        fits[rule] = fit_power_law([r["training_nodes"] for r in mine], [r["error"] for r in mine],
+                                   bootstrap=bootstrap, seed=0)
+    return fits
+
+
+# ---- validation and setup ----------------------------------------------------------------------
+def _check_repeats(repeats):
+    if isinstance(repeats, bool) or not isinstance(repeats, (int, np.integer)) or repeats < 1:
+        raise InputError(f"--repeats {repeats}: use a whole number >= 1")
+    return int(repeats)
+
+
+def _check_number(value, option, low, high, wanted):
+    ok = isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)
+    if not ok or not low <= value < high:
+        raise InputError(f"{option} {value}: use {wanted}")
+    return float(value)
+
+
+def _check_out(out, store):
+    path = Path(out)
+    resolved, root = path.resolve(), store.path.resolve()
+    if resolved == root or root in resolved.parents:
+        raise InputError(f"--out {out}: inside the store directory {store.path}; write the study "
+                         f"elsewhere")
+    if path.exists() and not path.is_dir():
+        raise InputError(f"--out {out}: exists and is not a directory")
+    return resolved
+
+
+def _setup(store, answers, budgets, rules, repeats, targets, l2):
+    """Everything the cells share: pool, evaluation set, cell plans and their keys."""
+    split = store.load("graph", "split", mmap=False)
+    label = store.load("graph", "label", mmap=False)
+    pool = np.flatnonzero((split == SPLIT_CODES["train"]) & (label != NO_LABEL)).astype(np.int64)
+    if len(pool) == 0:
+        raise InputError(f"--store {store.path}: no labelled node has split train, so the training "
+                         f"pool is empty; mark training nodes in the node table's split column")
+    if answers is None:
+        rows = np.flatnonzero((split == SPLIT_CODES["valid"]) & (label != NO_LABEL)).astype(np.int64)
+        truth = label[rows]
+        if len(rows) == 0:
+            raise InputError(f"--store {store.path}: no labelled valid node to evaluate on; give "
+                             f"--answers FILE.parquet (node_id, label) of held-out nodes")
+        evaluation = {"source": "valid split", "nodes": int(len(rows))}
+    else:
+        rows, truth = _answers(store, answers, pool)
+        evaluation = {"source": str(answers), "nodes": int(len(rows))}
+    hops = int(store.entry("propagate")["params"]["hops"])
+    embedding = store.stage_dir("propagate") / f"hop_{hops}.npy"
+    width = int(np.load(embedding, mmap_mode="r").shape[1])
+    sizes = _sizes(budgets, len(pool))
+    base = {"graph": store.entry("graph")["dir"], "propagate": store.entry("propagate")["dir"],
+            "targets": targets, "hop": hops, "l2": l2,
+            "evaluation": _digest(rows, truth)}
+    cells = [{"rule": FULL, "budget": 1.0, "k": len(pool), "repeat": 0, "seed": 0}]
+    for rule in rules:
+        for budget, k in sizes:
+            for repeat in range(1 if rule in SEED_FREE else repeats):
+                cells.append({"rule": rule, "budget": budget, "k": k, "repeat": repeat, "seed": repeat})
+    for cell in cells:
+        cell["key"] = key(base, {k: cell[k] for k in ("rule", "k", "seed")})
+        cell["name"] = _cell_name(cell)
+    return {"store": store, "pool": pool, "eval_rows": rows, "eval_truth": truth, "width": width,
+            "embedding": str(embedding), "cells": cells, "rules": rules, "repeats": repeats,
+            "targets": targets, "l2": l2, "evaluation": evaluation, "hop": hops,
+            "budgets": [b for b, _ in sizes] + [1.0]}
+
+
+def _sizes(budgets, pool):
+    """(budget, k) for each budget below the full pool, sorted by k; duplicates of k dropped."""
+    seen = {}
+    for budget in budgets:
+        k = budget if isinstance(budget, int) else max(1, int(round(budget * pool)))
+        if k > pool:
+            raise InputError(f"--budgets {budget}: larger than the training pool ({pool} nodes); "
+                             f"use at most {pool} or a fraction")
+        if k < pool:
+            seen.setdefault(k, budget)
+    return sorted(((b, k) for k, b in seen.items()), key=lambda item: item[1])
+
+
+def _answers(store, path, pool):
+    """Dense indices (sorted) and labels of the held-out nodes in the answers file."""
+    table = read_id_file(path, "--answers", ("node_id", "label"))
+    if table.num_rows == 0 or table.column("label").null_count:
+        raise InputError(f"--answers {path}: every row needs a label, and there must be at least one")
+    wanted, dense = lookup(store, table.column("node_id"), "--answers", path)
+    bad = np.flatnonzero((dense < 0) | np.isin(dense, pool))
+    if len(bad):
+        where = "is not in the graph" if dense[bad[0]] < 0 else "is in the training pool"
+        raise InputError(f"--answers {path}: node {wanted[int(bad[0])].as_py()} {where}; "
+                         f"answers must be held-out nodes of the graph")
+    if len(np.unique(dense)) != len(dense):
+        raise InputError(f"--answers {path}: a node_id appears twice; give one label per node")
+    order = np.argsort(dense)
+    truth = table.column("label").to_numpy(zero_copy_only=False).astype(np.int64)
+    return dense[order].astype(np.int64), truth[order]
+
+
+def _digest(rows, truth):
+    import hashlib
+
+    return hashlib.sha256(rows.tobytes() + truth.tobytes()).hexdigest()[:24]
+
+
+def _cell_name(cell):
+    budget = f"{cell['budget']:g}" if isinstance(cell["budget"], float) else str(cell["budget"])
+    return f"{cell['rule']}-b{budget}-r{cell['repeat']}"
+
+
+# ---- running the cells ---------------------------------------------------------------------
+def _study(setup, out, tolerance, memory, threads):
+    from .studyreport import write_outputs
+
+    folder = out / "cells"
+    folder.mkdir(parents=True, exist_ok=True)
+    done = {c["name"]: _read_cell(folder / f"{c['name']}.json", c["key"]) for c in setup["cells"]}
+    todo = [c for c in setup["cells"] if done[c["name"]] is None]
+    workers, per_worker = _plan_workers(setup, len(todo), memory, threads)
+    context = {"store": str(setup["store"].path), "embedding": setup["embedding"],
+               "pool": setup["pool"], "eval_rows": setup["eval_rows"],
+               "eval_truth": setup["eval_truth"], "width": setup["width"], "targets": setup["targets"], "l2": setup["l2"],
+               "memory": per_worker, "threads": 1 if workers > 1 else threads}
+    with progress(total=len(todo), desc="study", unit="cell") as bar:
+        for cell, result in _run_all(todo, context, workers):
+            record = {"key": cell["key"], "cell": {k: cell[k] for k in ("rule", "budget", "k", "repeat", "seed")},
+                      "result": result}
+            _write_json(folder / f"{cell['name']}.json", record)
+            done[cell["name"]] = record
+            bar.update(1)
+    rows = _table_rows(setup, done)
+    summary = {"recommendation": recommend(rows, tolerance), "fits": fit_rules(rows),
+               "cells": {"run": len(todo), "skipped": len(setup["cells"]) - len(todo),
+                         "workers": workers, "memory_per_worker": per_worker},
+               "settings": {"rules": setup["rules"], "budgets": setup["budgets"],
+                            "repeats": setup["repeats"], "targets": setup["targets"],
+                            "l2": setup["l2"], "embedding": f"hop_{setup['hop']}",
+                            "evaluation": setup["evaluation"], "pool": int(len(setup["pool"]))},
+               "diagnostics": _diagnostics(setup, done)}
+    summary["outputs"] = write_outputs(out, rows, summary)
+    return summary
+
+
+def _plan_workers(setup, cells, memory, threads):
+    """Worker count and each worker's byte budget: as many as the threads and the budget allow.
+
+    One worker's need is counted for the hungriest rule (the select stage's own check, made in
+    the worker, has the exact figure): target rows twice, pool rows twice (rows plus an index
+    over them), a proxy's probabilities over the pool, per-node arrays, training and evaluation
+    rows and the proxy's chunks.
+    """
+    from ..selection.select import TARGETS
+
+    pool, rows = len(setup["pool"]), 4 * setup["width"]
+    split = setup["store"].load("graph", "split", mmap=False)
+    targets = int(np.sum(split == TARGETS[setup["targets"]]))
+    classes = len(np.unique(setup["eval_truth"])) + 1
+    largest = max(c["k"] for c in setup["cells"])
+    need = (2 * targets * rows + 48 * targets + 2 * pool * rows + 48 * pool + 32 * pool * classes
+            + 40 * len(split) + rows * (largest + len(setup["eval_rows"])) + 16 * rows * 65536)
+    per_worker = FIXED_OVERHEAD + need
+    if memory < per_worker:
+        raise BudgetError(f"--memory-budget {format_size(memory)} is too small for study: one "
+                          f"worker needs about {format_size(per_worker)}")
+    workers = max(1, min(threads, cells, memory // per_worker))
+    return int(workers), int(memory // workers)
+
+
+@contextmanager
+def _one_thread_env():
+    saved = {name: os.environ.get(name) for name in ONE_THREAD}
+    os.environ.update(ONE_THREAD)
+    try:
+        yield
+    finally:
+        for name, value in saved.items():
+            if value is None:
+                os.environ.pop(name, None)
+            else:
+                os.environ[name] = value
+
+
+def _run_all(todo, context, workers):
+    """Yield (cell, result) as cells finish: in this process, or in ``workers`` spawned ones."""
+    if workers <= 1:
+        _init_worker(context)
+        for cell in todo:
+            yield cell, _run_cell(cell)
+        return
+    # spawn, not fork: a forked child inherits the parent's OpenMP and numba thread pools.
+    with _one_thread_env(), ProcessPoolExecutor(workers, mp_context=get_context("spawn"),
+                                                initializer=_init_worker,
+                                                initargs=(context,)) as executor:
+        futures = {executor.submit(_run_cell, cell): cell for cell in todo}
+        try:
+            for future in as_completed(futures):
+                yield futures[future], future.result()
+        except BaseException:
+            executor.shutdown(wait=True, cancel_futures=True)
+            raise
+
+
+_WORKER = {}
+
+
+def _init_worker(context):
+    """Per process: thread counts, and the evaluation rows read once."""
+    set_threads(context["threads"])
+    window = rows_per_chunk(max(1, context["memory"] - FIXED_OVERHEAD) // 8, 4 * context["width"],
+                            at_least=1024)
+    _WORKER.clear()
+    _WORKER.update(context, window=window,
+                   eval_x=_gather(context["embedding"], context["eval_rows"], window))
+
+
+def _run_cell(cell):
+    """Select, train the proxy on the subset, score it on the evaluation rows."""
+    from .proxy import fit_proxy, scores
+    from ..selection.select import select
+
+    started = time.perf_counter()
+    ctx = _WORKER
+    store = Store(ctx["store"])
+    result = {}
+    if cell["rule"] == FULL:
+        rows = ctx["pool"]
+        result["fill_picks"] = 0
+    else:
+        report = select(store, cell["rule"], int(cell["k"]), targets=ctx["targets"],
+                        seed=cell["seed"], memory_budget=ctx["memory"], threads=ctx["threads"])
+        rows = np.sort(report.pop("indices"))
+        result["coverage"] = report["coverage"]
+        result["diagnostics"] = report["diagnostics"]
+        result["classes"] = report["classes"]
+        result["fill_picks"] = report.get("greedy", {}).get("filled", 0)
+    label = store.load("graph", "label", mmap=False)[rows]
+    x = _gather(ctx["embedding"], rows, ctx["window"])
+    # the proxy holds a float64 copy of each chunk and three (chunk, classes) temporaries
+    classes = len(np.unique(ctx["eval_truth"])) + len(np.unique(label))
+    chunk = rows_per_chunk(max(1, ctx["memory"] - FIXED_OVERHEAD) // 8, 8 * (ctx["width"] + 3 * classes),
+                           at_least=1024)
+    model = fit_proxy(x, label, np.arange(len(rows)), l2=ctx["l2"], chunk_rows=chunk)
+    del x
+    guess = model.predict(ctx["eval_x"], np.arange(len(ctx["eval_rows"])), chunk_rows=chunk)
+    result.update(scores(ctx["eval_truth"], guess))
+    result["training_nodes"] = int(len(rows))
+    result["iterations"] = model.iterations
+    result["seconds"] = round(time.perf_counter() - started, 3)
+    return result
+
+
+def _gather(path, rows, window_rows):
+    """Rows ``rows`` (sorted int64) of the ``.npy`` at ``path`` as float32, one window mapped at a
+    time so that the file's pages leave RSS as each window closes."""
+    width = np.load(path, mmap_mode="r").shape[1]
+    out = np.empty((len(rows), width), dtype=np.float32)
+    if len(rows) == 0:
+        return out
+    starts = [a for a, _ in chunk_ranges(int(rows[-1]) + 1, window_rows)]
+    cuts = list(np.searchsorted(rows, starts)) + [len(rows)]
+    for lo, hi in zip(cuts[:-1], cuts[1:]):
+        if hi > lo:
+            mapped = np.load(path, mmap_mode="r")
+            out[lo:hi] = mapped[rows[lo:hi]]
+            del mapped
+    return out
+
+
+# ---- cells on disk ---------------------------------------------------------------------------
+def _read_cell(path, expected):
+    """The stored record when its key matches, else None (missing, unreadable or stale)."""
+    try:
+        record = json.loads(path.read_text())
+    except (OSError, ValueError):
+        return None
+    return record if isinstance(record, dict) and record.get("key") == expected else None
+
+
+def _write_json(path, payload):
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    try:
+        with open(tmp, "w") as fh:
+            json.dump(payload, fh, indent=1)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    finally:
+        tmp.unlink(missing_ok=True)
+
+
+def _table_rows(setup, done):
+    """One row per (rule, budget, repeat); the full pool's cell stands in every rule at budget 1."""
+    full = done[_cell_name(setup["cells"][0])]["result"]  # the first cell is the full pool
+    rows = []
+    for cell in setup["cells"]:
+        if cell["rule"] == FULL:
+            continue
+        rows.append(_row(cell["rule"], cell["budget"], cell["repeat"], done[cell["name"]]["result"]))
+    for rule in setup["rules"]:
+        rows.append(_row(rule, 1.0, 0, full))
+    return rows
+
+
+def _row(rule, budget, repeat, result):
+    return {"rule": rule, "budget": float(budget), "training_nodes": result["training_nodes"],
+            "repeat": repeat, "accuracy": result["accuracy"], "error": 1.0 - result["accuracy"],
+            "macro_f1": result["macro_f1"], "per_class": result["per_class"],
+            "seconds": result["seconds"],
+            "coverage_radius": result.get("coverage", {}).get("radius", math.nan),
+            "mean_degree": result.get("diagnostics", {}).get("selected", {}).get("degree", math.nan),
+            # kcenter picks made by its farthest-first fill once every target was served
+            "fill_picks": result.get("fill_picks", math.nan)}
+
+
+def _diagnostics(setup, done):
+    """Per rule and budget, the mean over repeats of the select reports' diagnostics."""
+    out, pool = {}, None
+    for cell in setup["cells"]:
+        result = done[cell["name"]]["result"]
+        if "diagnostics" not in result:
+            continue
+        pool = result["diagnostics"]["pool"]
+        sel = result["diagnostics"]["selected"]
+        values = {"degree": sel["degree"], "pagerank": sel["pagerank"],
+                  "homophily": sel["homophily"], "radius": result["coverage"]["radius"],
+                  "mean_distance": result["coverage"]["mean"]}
+        slot = out.setdefault(cell["rule"], {}).setdefault(str(cell["k"]), {"budget": cell["budget"], "runs": []})
+        slot["runs"].append(values)
+    for rule in out.values():
+        for slot in rule.values():
+            runs = slot.pop("runs")
+            for name in runs[0]:
+                seen = [r[name] for r in runs if r[name] is not None]
+                slot[name] = float(np.mean(seen)) if seen else None
+    return {"rules": out, "pool": pool}

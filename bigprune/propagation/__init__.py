@@ -1,0 +1,2 @@
+"""The propagate stage: smoothed feature hops and PageRank from the graph stage."""
+from .propagate import propagate

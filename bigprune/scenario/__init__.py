@@ -1,0 +1,2 @@
+"""The generated demo: the marketplace scenario and the whole pipeline run on it."""
+from .demo import demo

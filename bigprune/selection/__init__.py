@@ -1,0 +1,2 @@
+"""The select stage: strategies, the k-center greedy, hardness scores and the selection report."""
+from .select import select

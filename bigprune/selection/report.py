@@ -1,0 +1,80 @@
+"""The selection report: coverage of the targets, load, classes and graph diagnostics."""
+import numpy as np
+
+from ..kernels.homophily import agreement
+from ..common.memory import chunk_ranges
+from ..common.schema import NO_LABEL, SPLIT_CODES
+
+CAUTION = ("A pruned training set can serve small classes and sub-groups worse than the full "
+           "pool: check per-class and per-group accuracy before deploying a model trained on it.")
+QUANTILES = {"p50": 0.5, "p90": 0.9, "p99": 0.99}
+
+
+def coverage(dist, assign, k):
+    """Coverage and load of the selection.
+
+    dist : float64 (m,), each target's L2 distance to its nearest selected node.
+    assign : int64 (m,), that node's rank. k : int, selected count.
+    """
+    load = np.bincount(assign, minlength=k)
+    cover = {"radius": float(dist.max()), "mean": float(dist.mean())}
+    cover.update({name: float(np.quantile(dist, q)) for name, q in QUANTILES.items()})
+    return {"coverage": cover, "load": {"max": int(load.max()), "mean": float(load.mean())}}
+
+
+def class_counts(labels):
+    """``{label: count}`` with string keys (JSON objects need them), in label order."""
+    values, counts = np.unique(labels, return_counts=True)
+    return {str(int(v)): int(c) for v, c in zip(values, counts)}
+
+
+def changes(selected, included):
+    """How the selection relates to the include list: ``{kept, added, dropped}`` node counts."""
+    kept = int(np.isin(included, selected).sum())
+    return {"kept": kept, "added": int(len(selected)) - kept, "dropped": int(len(included)) - kept}
+
+
+def homophily(store, nodes, window_rows):
+    """Mean label homophily of ``nodes`` (sorted int64 dense indices).
+
+    A node's homophily is the share of its labelled neighbours (split train or valid, with a
+    label) that carry its own label; the mean runs over nodes with at least one labelled
+    neighbour (None when there is none). The CSR is read one window of rows at a time.
+    """
+    split = store.load("graph", "split", mmap=False)
+    label = store.load("graph", "label", mmap=False)
+    known = np.isin(split, [SPLIT_CODES["train"], SPLIT_CODES["valid"]]) & (label != NO_LABEL)
+    neighbour_label = np.where(known, label, NO_LABEL).astype(np.int64)
+    indptr = store.load("graph", "indptr", mmap=False)
+    total, counted = 0.0, 0
+    starts = [a for a, _ in chunk_ranges(len(indptr) - 1, window_rows)]
+    cuts = list(np.searchsorted(nodes, starts)) + [len(nodes)]
+    for first, lo, hi in zip(starts, cuts[:-1], cuts[1:]):
+        if hi == lo:
+            continue
+        part = nodes[lo:hi]
+        last = int(part[-1]) + 1
+        indices = store.load("graph", "indices")
+        window = np.array(indices[indptr[first]:indptr[last]])
+        del indices
+        same = np.empty(len(part), dtype=np.int64)
+        labelled = np.empty(len(part), dtype=np.int64)
+        agreement(indptr[first:last + 1] - indptr[first], window, neighbour_label, NO_LABEL,
+                  part, first, label[part], same, labelled)
+        seen = labelled > 0
+        total += float(np.sum(same[seen] / labelled[seen]))
+        counted += int(seen.sum())
+    return total / counted if counted else None
+
+
+def diagnostics(store, selected, pool, window_rows):
+    """Mean degree, PageRank and homophily of the selection beside the whole pool."""
+    degree = np.diff(store.load("graph", "indptr", mmap=False))
+    rank = store.load("propagate", "pagerank", mmap=False)
+
+    def describe(nodes):
+        nodes = np.sort(nodes)
+        return {"degree": float(degree[nodes].mean()), "pagerank": float(rank[nodes].mean()),
+                "homophily": homophily(store, nodes, window_rows)}
+
+    return {"selected": describe(selected), "pool": describe(pool)}

@@ -1,0 +1,420 @@
+"""The select stage: pick training nodes, write the selection and its report.
+
+``select()`` validates everything and plans memory; ``_select()`` trusts its inputs and works.
+"""
+import json
+import math
+import os
+import shutil
+import time
+import uuid
+from pathlib import Path
+
+import numpy as np
+
+from ..common.errors import BudgetError, InputError
+from ..common.ids import lookup, read_id_file
+from ..common.memory import FIXED_OVERHEAD, format_size, parse_size, peak_rss, rows_per_chunk, working_memory
+from .report import CAUTION, changes, class_counts, coverage, diagnostics
+from ..common.runtime import set_threads
+from .kcenter import GROUP_ROWS, PRODUCT_ITEMS, cover
+from ..common.schema import NO_LABEL, NO_SPLIT, SPLIT_CODES
+from ..common.store import STAGING, Store
+from .strategies import NEEDS_POOL_ROWS, NEEDS_PROXY, STRATEGIES, Problem
+
+# Which nodes each ``--targets`` choice means: split codes.
+TARGETS = {"test": SPLIT_CODES["test"], "valid": SPLIT_CODES["valid"], "unlabeled": NO_SPLIT}
+# Float64 copies of a feature chunk the proxy holds at once (standardized rows, logits, grads).
+PROXY_ROW_COPIES = 4
+
+
+def select(store, strategy, budget=None, targets="test", seed=0, out=None, memory_budget="4GiB",
+           threads=None, embedding_hop=None, initial=None, include=None, exclude=None,
+           min_per_class=None, radius=None):
+    """Choose ``budget`` training-pool nodes with ``strategy`` and report what they cover.
+
+    Parameters
+    ----------
+    store : Store or path, with committed graph and propagate stages.
+    strategy : str, one of ``STRATEGIES``.
+    budget : float in (0, 1) (a share of the training pool, before any exclusion) or int >= 1
+        (a count); strings are parsed. Required unless ``radius`` is given.
+    targets : ``"test"``, ``"valid"`` or ``"unlabeled"`` (nodes with no split).
+    seed : int. out : path ending in ``.parquet`` outside the store, or None (nothing written).
+    memory_budget : size such as ``"4GiB"``. threads : int or None (all available cores).
+    embedding_hop : int or None; distances use ``hop_<h>`` (0 = input features), default the last.
+    initial : sequence of node ids (the user's ids) of pool nodes chosen first, or None.
+    include : path of a Parquet file with a ``node_id`` column (e.g. an earlier selection): these
+        pool nodes are kept and chosen first (the greedy's starting centres). Not with ``initial``.
+    exclude : path, same format: these nodes are never chosen (ids of graph nodes outside the
+        training pool are allowed and counted).
+    min_per_class : int >= 1, or a fraction (0, 1) of the budget (rounded up): each class of the
+        pool gets at least that many picks, capped at its pool size.
+    radius : float >= 0 or None; ``kcenter`` only, instead of ``budget``: the fewest greedy picks
+        that bring every target within ``radius`` (plus any quota picks).
+
+    Returns
+    -------
+    dict : the report (also written beside ``out`` as ``.json``) plus ``"indices"``, an int64
+    array of the selected dense indices in the order chosen.
+    """
+    started = time.perf_counter()
+    store = store if isinstance(store, Store) else Store(store)
+    if strategy not in STRATEGIES:
+        raise InputError(f"--strategy {strategy}: unknown; use one of {', '.join(STRATEGIES)}")
+    if targets not in TARGETS:
+        raise InputError(f"--targets {targets}: unknown; use one of {', '.join(TARGETS)}")
+    radius = _check_radius(radius, strategy, budget)
+    if include is not None and initial is not None:
+        raise InputError(f"--include {include}: give either an include file or initial ids, not both")
+    out = _check_out(out, store)
+    memory = parse_size(memory_budget)
+    threads = set_threads(threads)
+    split = store.load("graph", "split", mmap=False)
+    label = store.load("graph", "label", mmap=False)
+    hops = int(store.entry("propagate")["params"]["hops"])
+    hop = hops if embedding_hop is None else _check_hop(embedding_hop, hops)
+    whole_pool = np.flatnonzero((split == SPLIT_CODES["train"]) & (label != NO_LABEL)).astype(np.int64)
+    if len(whole_pool) == 0:
+        raise InputError(f"--store {store.path}: no labelled node has split train, so the training "
+                         f"pool is empty; mark training nodes in the node table's split column")
+    chosen_targets = np.flatnonzero(split == TARGETS[targets]).astype(np.int64)
+    if len(chosen_targets) == 0:
+        others = ", ".join(t for t in TARGETS if t != targets)
+        raise InputError(f"--targets {targets}: no node is in this set; choose another ({others})")
+    _check_computed(store, hop, np.concatenate([whole_pool, chosen_targets]), targets)
+    pool, k, start, quota, constraints = _constrain(
+        store, label, whole_pool, budget, radius, initial, include, exclude, min_per_class)
+    embedding = (store.stage_dir("graph") / "features.npy" if hop == 0
+                 else store.stage_dir("propagate") / f"hop_{hop}.npy")
+    width = np.load(embedding, mmap_mode="r").shape[1]
+    classes = len(np.unique(label[pool]))
+    need, chunk = _plan(memory, strategy, len(pool), len(chosen_targets), k, width, classes)
+    spare = memory - FIXED_OVERHEAD - need
+    window_rows = rows_per_chunk(spare // 4, 4 * width, at_least=1024)
+    proxy_rows = rows_per_chunk(spare // 4, PROXY_ROW_COPIES * 8 * (width + classes), at_least=1024)
+    scratch = None
+    if chunk is not None:
+        scratch = store.path / STAGING / f"select-{os.getpid()}-{uuid.uuid4().hex[:8]}"
+        scratch.mkdir(parents=True)
+        chunk = (*chunk, scratch)
+    given = budget if isinstance(budget, (int, float, str)) or budget is None else str(budget)
+    extra = {"budget": given, "target_split": targets, "embedding": f"hop_{hop}", "metric": "L2",
+             "threads": threads, "constraints": constraints,
+             "targets_in_memory": chunk is None}
+    try:
+        problem = Problem(store, pool, chosen_targets, k, start, int(seed), embedding, window_rows,
+                          label, quota, radius, proxy_rows, chunk)
+        return _select(problem, strategy, label, out, started, extra)
+    finally:
+        if scratch is not None:
+            shutil.rmtree(scratch, ignore_errors=True)
+
+
+def _constrain(store, label, whole_pool, budget, radius, initial, include, exclude, min_per_class):
+    """Apply the exclude list, the budget, the include list and the quotas, checked together.
+
+    Returns (pool, k, start, quota, constraints): the candidates left, the pick count (the
+    pool size in radius mode), the must-include nodes, ``{class: minimum}`` and the report's
+    record of what was applied.
+    """
+    constraints = {}
+    pool = whole_pool
+    if exclude is not None:
+        pool, constraints["exclude"] = _excluded(store, exclude, whole_pool)
+    budget_mode = radius is None
+    k = parse_budget(budget, len(whole_pool)) if budget_mode else len(pool)
+    if k > len(pool):
+        raise InputError(f"--budget {budget}: {k} picks, but only {len(pool)} pool nodes remain "
+                         f"after --exclude {exclude}; use at most {len(pool)}")
+    if include is not None:
+        start = _included(store, include, whole_pool, pool, exclude, k if budget_mode else None)
+        constraints["include"] = {"file": str(include), "nodes": int(len(start))}
+    else:
+        start = _initial_nodes(store, initial, pool, k)
+    quota = {}
+    if min_per_class is not None:
+        quota = _quotas(min_per_class, k if budget_mode else None, label[pool], label[start])
+        constraints["min_per_class"] = {"given": min_per_class, "counts": {
+            str(c): q for c, q in quota.items()}}
+    if not budget_mode:
+        constraints["radius"] = radius
+    return pool, k, start, quota, constraints
+
+
+def parse_budget(budget, pool):
+    """The number of nodes to pick from a fraction (0 < B < 1) or a count (1 <= B <= pool)."""
+    value = fraction_or_count(budget)
+    if value is None:
+        raise InputError(f"--budget {budget}: use a fraction between 0 and 1 of the training pool "
+                         f"or a whole count from 1 to {pool} (the pool size)")
+    k = max(1, int(round(value * pool))) if value < 1 else int(value)
+    if k > pool:
+        raise InputError(f"--budget {budget}: larger than the training pool ({pool} nodes); "
+                         f"use at most {pool} or a fraction below 1")
+    return k
+
+
+def fraction_or_count(value):
+    """``value`` as a float that is a fraction in (0, 1) or a whole number >= 1, else None."""
+    try:
+        number = float(value) if not isinstance(value, bool) else math.nan
+    except (TypeError, ValueError):
+        return None
+    if not math.isfinite(number) or number <= 0 or (number >= 1 and number != int(number)):
+        return None
+    return number
+
+
+def parse_quota(value, k):
+    """Per-class minimum from a count (>= 1) or a fraction of the budget ``k`` (rounded up).
+
+    ``k`` is None in radius mode, where only a count makes sense.
+    """
+    number = fraction_or_count(value)
+    if number is None:
+        raise InputError(f"--min-per-class {value}: use a whole count >= 1 or a fraction of the "
+                         f"budget between 0 and 1")
+    if number >= 1:
+        return int(number)
+    if k is None:
+        raise InputError(f"--min-per-class {value}: a fraction of the budget needs --budget; with "
+                         f"--radius give a whole count")
+    return max(1, math.ceil(number * k - 1e-9))
+
+
+def _quotas(value, k, pool_labels, include_labels):
+    """``{class: minimum}`` for every class of the pool, checked against the budget ``k``."""
+    per_class = parse_quota(value, k)
+    classes, sizes = np.unique(pool_labels, return_counts=True)
+    included = dict(zip(*np.unique(include_labels, return_counts=True)))
+
+    def picks(q):  # the budget the quotas and the include list take together
+        return sum(max(min(q, int(n)), int(included.get(c, 0))) for c, n in zip(classes, sizes))
+
+    if k is not None and picks(per_class) > k:
+        # quotas above the largest class all cost the same: no need to try them
+        best = max((q for q in range(min(per_class, int(sizes.max()) + 1)) if picks(q) <= k),
+                   default=0)
+        fix = f"use at most {best} or raise --budget" if best >= 1 else "raise --budget"
+        raise InputError(f"--min-per-class {value}: {len(classes)} classes need {picks(per_class)} "
+                         f"picks{' with the include list' if included else ''}, more than the "
+                         f"budget {k}; {fix}")
+    return {int(c): min(per_class, int(n)) for c, n in zip(classes, sizes)}
+
+
+def _check_radius(radius, strategy, budget):
+    if radius is None:
+        if budget is None:
+            raise InputError("--budget: required (a fraction of the training pool or a count) "
+                             "unless --radius is given with --strategy kcenter")
+        return None
+    try:
+        value = float(radius) if not isinstance(radius, bool) else math.nan
+    except (TypeError, ValueError):
+        value = math.nan
+    if not math.isfinite(value) or value < 0:
+        raise InputError(f"--radius {radius}: use a distance >= 0 in the embedding's units "
+                         f"(a report's coverage radius shows the scale)")
+    if strategy != "kcenter":
+        raise InputError(f"--radius {radius}: only --strategy kcenter has a radius mode; use "
+                         f"kcenter or give --budget instead")
+    if budget is not None:
+        raise InputError(f"--radius {radius}: give --budget or --radius, not both; the radius "
+                         f"mode picks as many nodes as it needs")
+    return value
+
+
+def _check_out(out, store):
+    if out is None:
+        return None
+    path = Path(out)
+    if path.suffix != ".parquet":
+        raise InputError(f"--out {out}: must end in .parquet")
+    resolved, root = path.resolve(), store.path.resolve()
+    if resolved == root or root in resolved.parents:
+        raise InputError(f"--out {out}: inside the store directory {store.path}; write it elsewhere")
+    if not resolved.parent.is_dir():
+        raise InputError(f"--out {out}: directory {path.parent} does not exist")
+    return resolved
+
+
+def _check_computed(store, hop, rows, targets):
+    """Refuse rows a restricted propagation (``--restrict``) did not compute at ``hop``."""
+    path = store.stage_dir("propagate") / "computed_through.npy"
+    if hop == 0 or not path.exists():
+        return
+    if np.any(np.load(path)[rows] < hop):
+        raise InputError(f"--targets {targets}: propagate computed hop {hop} only for the training pool "
+                         "and the valid and test splits (--restrict); rerun bigprune propagate --no-restrict")
+
+
+def _check_hop(hop, hops):
+    if isinstance(hop, bool) or not isinstance(hop, (int, np.integer)) or not 0 <= hop <= hops:
+        raise InputError(f"--embedding-hop {hop}: the propagate stage holds hops 0 to {hops}; "
+                         f"use one of those or rerun bigprune propagate with more hops")
+    return int(hop)
+
+
+def _initial_nodes(store, initial, pool, k):
+    """Dense indices of the user's ``initial`` ids, which must be distinct pool nodes."""
+    if initial is None:
+        return np.zeros(0, dtype=np.int64)
+    import pyarrow as pa
+
+    wanted, dense = lookup(store, pa.array(list(initial)), "initial=", "(ids given in Python)")
+    outside = (dense < 0) | ~np.isin(dense, pool)
+    if outside.any():
+        raise InputError(f"--initial: node {wanted[int(np.argmax(outside))].as_py()} is not in the "
+                         f"training pool; give ids of nodes with split train and a label")
+    if len(np.unique(dense)) != len(dense) or len(dense) > k:
+        raise InputError(f"--initial: {len(dense)} ids given; use at most {k} (the budget) "
+                         f"distinct pool nodes")
+    return dense
+
+
+def _node_file(store, path, option):
+    """The ``node_id`` column of the Parquet file ``path`` as the store's id type, and the
+    dense index of each id (-1 where the graph has no such node)."""
+    return lookup(store, read_id_file(path, option).column("node_id"), option, path)
+
+
+def _included(store, path, whole_pool, pool, exclude, k):
+    """Dense indices, in file order, of the must-include nodes (checked against ``k``)."""
+    wanted, dense = _node_file(store, path, "--include")
+    bad = (dense < 0) | ~np.isin(dense, whole_pool)
+    if bad.any():
+        raise InputError(f"--include {path}: node {wanted[int(np.argmax(bad))].as_py()} is not in "
+                         f"the training pool; give ids of nodes with split train and a label")
+    banned = ~np.isin(dense, pool)
+    if banned.any():
+        raise InputError(f"--include {path}: node {wanted[int(np.argmax(banned))].as_py()} is also "
+                         f"in --exclude {exclude}; a node cannot be both")
+    _, first = np.unique(dense, return_index=True)
+    if len(first) != len(dense):
+        twice = int(np.setdiff1d(np.arange(len(dense)), first)[0])
+        raise InputError(f"--include {path}: node {wanted[twice].as_py()} appears twice; list each "
+                         f"node once")
+    if k is not None and len(dense) > k:
+        raise InputError(f"--include {path}: {len(dense)} nodes, more than the budget {k}; raise "
+                         f"--budget to at least {len(dense)} or shorten the file")
+    return dense
+
+
+def _excluded(store, path, whole_pool):
+    """The pool left after removing the nodes of ``path``, and what the exclusion did."""
+    wanted, dense = _node_file(store, path, "--exclude")
+    if (dense < 0).any():
+        raise InputError(f"--exclude {path}: node {wanted[int(np.argmax(dense < 0))].as_py()} is "
+                         f"not in the graph; give ids from the node table")
+    inside = np.isin(dense, whole_pool)
+    pool = np.setdiff1d(whole_pool, dense[inside])
+    if len(pool) == 0:
+        raise InputError(f"--exclude {path}: removes every training pool node; nothing is left "
+                         f"to choose")
+    removed = len(whole_pool) - len(pool)
+    return pool, {"file": str(path), "nodes": int(removed),
+                  "outside_pool": int(len(np.unique(dense[~inside])))}
+
+
+def _plan(memory, strategy, pool, targets, k, width, classes):
+    """Bytes the stage holds at its peak, and how targets are read: ``(need, None)`` when
+    their rows fit in memory, else ``(need, (chunk rows, group rows))`` to keep them on disk.
+    Refuses (exit 3) when even the on-disk way does not fit."""
+    spare = working_memory(memory, f"select --strategy {strategy}")
+    rows = 4 * width
+    common = _common_bytes(strategy, pool, k, width, classes)
+    need = common + _in_memory_bytes(targets, width)
+    if need <= spare:
+        return need, None
+    group_rows = GROUP_ROWS
+    fixed = common + _on_disk_bytes(targets, k, width, group_rows)
+    least = fixed + 3 * min(targets, 1024) * rows
+    if least > spare:
+        raise BudgetError(f"--memory-budget {format_size(memory)} is too small for select --strategy "
+                          f"{strategy} with {targets} targets, even with their rows kept on disk: "
+                          f"use at least {format_size(least + FIXED_OVERHEAD, up=True)}")
+    chunk_rows = min(targets, rows_per_chunk((spare - fixed) // 2, 3 * rows, at_least=1024))
+    return fixed + 3 * chunk_rows * rows, (chunk_rows, group_rows)
+
+
+def _common_bytes(strategy, pool, k, width, classes):
+    """Bytes held whatever the targets' way: pool rows (and index), masks, proxy buffers."""
+    rows = 4 * width
+    need = 16 * pool
+    if strategy in NEEDS_POOL_ROWS:
+        need += 2 * pool * rows  # the rows, plus the index (or the sorted copy) over them
+    else:
+        need += k * rows
+    if strategy in NEEDS_PROXY:
+        need += 4 * 8 * pool * classes + 32 * pool  # probabilities, scores, ranking
+    return need
+
+
+def _in_memory_bytes(targets, width):
+    """Target rows plus their sorted copy, and per-target state."""
+    return 2 * targets * 4 * width + 48 * targets
+
+
+def _on_disk_bytes(targets, k, width, group_rows):
+    """Per-target state (order, position, distances, bounds, results and the build's labels:
+    ~80 bytes), k-means' sample (128 rows per cluster), the queued centres (twice while they
+    grow), one group and one product block; chunks of rows come on top."""
+    rows = 4 * width
+    sample = 128 * int(round(math.sqrt(targets))) * rows
+    return 80 * targets + sample + 2 * k * (rows + 16) + group_rows * rows + 4 * PRODUCT_ITEMS
+
+
+def _select(problem, strategy, label, out, started, extra):
+    """Run ``strategy``, build the report, write the outputs; returns the report."""
+    choice = STRATEGIES[strategy](problem)
+    order = choice.order
+    if choice.outcome is not None:
+        dist, assign = choice.outcome.dist, choice.outcome.assign
+    else:
+        # rows() wants sorted indices: read them sorted, then put them back in pick order.
+        by_node = np.argsort(order)
+        rows = np.empty((len(order), problem.target_source.shape[1]), dtype=np.float32)
+        rows[by_node] = problem.rows(order[by_node])
+        dist, assign = cover(problem.target_source, rows, seed=problem.seed)
+    report = {"strategy": strategy, "selected": int(len(order)), "pool": int(len(problem.pool)),
+              "targets": int(len(problem.targets)), "seed": problem.seed, **extra}
+    report.update(coverage(dist, assign, len(order)))
+    report["classes"] = class_counts(label[order])
+    if "include" in extra["constraints"]:
+        report["changed"] = changes(order, problem.initial)
+    report["diagnostics"] = diagnostics(problem.store, order, problem.pool, problem.window_rows)
+    report.update(choice.info or {})
+    report["caution"] = CAUTION
+    report["seconds"] = round(time.perf_counter() - started, 3)
+    report["peak_rss"] = peak_rss()
+    if out is not None:
+        _write(out, problem.store, order, label[order], report)
+    return {**report, "indices": order}
+
+
+def _write(out, store, order, labels, report):
+    """``out`` (node_id, rank, label) and ``out.json`` (the report), renamed into place."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    ids = store.table("graph", "node_id").column("node_id").take(pa.array(order))
+    table = pa.table({"node_id": ids, "rank": np.arange(len(order), dtype=np.int64),
+                      "label": labels.astype(np.int64)})
+    report_path = out.with_suffix(".json")
+    temps = [p.with_name(f".{p.name}.{os.getpid()}.tmp") for p in (out, report_path)]
+    placed = []
+    try:
+        pq.write_table(table, temps[0])
+        with open(temps[1], "w") as fh:
+            json.dump(report, fh, indent=2)
+        os.replace(temps[1], report_path)
+        placed.append(report_path)
+        os.replace(temps[0], out)
+    except BaseException:
+        for path in placed:  # a report without its selection would mislead
+            path.unlink(missing_ok=True)
+        raise
+    finally:
+        for temp in temps:
+            temp.unlink(missing_ok=True)

@@ -1,0 +1,317 @@
+"""Selection strategies: each takes a :class:`Problem` and returns a :class:`Choice`.
+
+Every strategy returns exactly ``problem.k`` distinct nodes of ``problem.pool`` (dense indices,
+the pool left after any exclusion), in the order they were chosen; ``problem.initial`` (the
+must-include list, possibly empty) always comes first. In radius mode (``kcenter`` only) the
+count is whatever the radius needs. Per-class quotas hold for every rule:
+
+- ranking rules (``random``, ``degree``, ``pagerank``, ``entropy``, ``el2n``, ``age``): the
+  best-ranked nodes of each under-served class are reserved first, the remaining slots go to
+  the best-ranked of the rest (the top-k with the fewest swaps);
+- ``stratified``: the class counts are the largest-remainder rounding of the pool's
+  proportions, raised to the quotas (the raise is paid by the other classes, proportionally);
+- ``kcenter`` / ``kcenter-pool``: the greedy runs unconstrained, then its latest picks from
+  classes above quota are dropped and each under-served class gets its share by continuing the
+  same greedy (from the kept picks) with only that class's nodes as candidates: the farthest
+  target, then its nearest node of that class. Late picks matter least (the radius trace never
+  rises, so the early prefix keeps the coverage it bought). In radius mode nothing is dropped:
+  the quota picks come on top of the prefix that reaches the radius.
+"""
+from collections import Counter, namedtuple
+from dataclasses import dataclass, field
+from functools import cached_property
+
+import numpy as np
+
+from ..common.errors import InputError
+from .hardness import age_scores, el2n_scores, entropy_scores
+from .kcenter import RowChunks, cover, greedy
+from ..common.memory import chunk_ranges
+
+Choice = namedtuple("Choice", "order outcome info", defaults=(None, None))
+Choice.__doc__ = """order : int64 (k,), dense indices. outcome : the kcenter ``Outcome`` whose
+``dist``/``assign`` are the report's targets' coverage, or None (the report computes it).
+info : dict or None, JSON-ready facts for the report (greedy counters, how scores were made)."""
+
+
+@dataclass
+class Problem:
+    """Everything a strategy may use.
+
+    store : Store with committed graph and propagate stages.
+    pool : int64 (n,), sorted dense indices of the candidates (training pool minus exclusions).
+    targets : int64 (m,), sorted. k : int, picks (in radius mode: the pool size, an upper bound).
+    initial : int64 (s,), pool nodes that must be chosen, first (s <= k).
+    seed : int. embedding : path of the (N, d) ``.npy`` holding the distance space.
+    window_rows : int, rows read per window from the embedding file (planned from the budget).
+    label : int64 (N,), every node's label. quota : {class: minimum count} (capped at the
+    class's pool size). radius : float or None, kcenter's radius mode.
+    proxy_rows : int, rows per chunk when the proxy model trains (planned from the budget).
+    target_chunk : None (target rows are held in memory) or (chunk rows, group rows, scratch
+    directory): the greedy keeps them on disk (see :class:`bigprune.selection.kcenter.RowChunks`).
+    """
+
+    store: object
+    pool: np.ndarray
+    targets: np.ndarray
+    k: int
+    initial: np.ndarray
+    seed: int
+    embedding: object
+    window_rows: int
+    label: np.ndarray
+    quota: dict = field(default_factory=dict)
+    radius: float = None
+    proxy_rows: int = 65536
+    target_chunk: tuple = None
+
+    def rows(self, index):
+        """Rows ``index`` (sorted int64) of the embedding as float32 (len, d).
+
+        The file is mapped one window at a time, so its pages leave RSS as each window closes.
+        """
+        index = np.asarray(index, dtype=np.int64)
+        width = np.load(self.embedding, mmap_mode="r").shape[1]
+        out = np.empty((len(index), width), dtype=np.float32)
+        if len(index) == 0:
+            return out
+        cuts = np.searchsorted(index, [a for a, _ in chunk_ranges(int(index[-1]) + 1, self.window_rows)])
+        bounds = list(cuts) + [len(index)]
+        for lo, hi in zip(bounds[:-1], bounds[1:]):
+            if hi > lo:
+                window = np.load(self.embedding, mmap_mode="r")
+                out[lo:hi] = window[index[lo:hi]]
+                del window
+        return out
+
+    @cached_property
+    def pool_rows(self):
+        return self.rows(self.pool)
+
+    @cached_property
+    def target_rows(self):
+        return self.rows(self.targets)
+
+    @property
+    def target_source(self):
+        """What the greedy and the coverage read targets from: their rows, or a RowChunks."""
+        if self.target_chunk is None:
+            return self.target_rows
+        chunk_rows, group_rows, scratch = self.target_chunk
+        width = np.load(self.embedding, mmap_mode="r").shape[1]
+        return RowChunks((len(self.targets), width), lambda at: self.rows(self.targets[at]),
+                         chunk_rows, scratch, group_rows)
+
+    @cached_property
+    def pool_label(self):
+        return self.label[self.pool]
+
+    def pool_positions(self, nodes):
+        """Positions in ``pool`` of pool nodes ``nodes``."""
+        return np.searchsorted(self.pool, nodes)
+
+    def deficits(self, chosen):
+        """``{class: picks still missing}`` for the classes that ``chosen`` leaves below quota."""
+        have = Counter(self.label[np.asarray(chosen, dtype=np.int64)].tolist())
+        return {c: q - have[c] for c, q in sorted(self.quota.items()) if q > have[c]}
+
+
+def largest_remainder(total, sizes, floors):
+    """Split ``total`` picks over classes of ``sizes`` in proportion, each at least its floor.
+
+    Hamilton's largest-remainder rounding of ``total * size / sum(sizes)``; classes whose share
+    falls below their floor are fixed at the floor and the rest is shared again among the
+    others (ties in the remainders go to the earlier class). Exact integer arithmetic.
+    sizes, floors : int (c,), ``floors <= sizes`` and ``sum(floors) <= total <= sum(sizes)``.
+    Returns int64 (c,), summing to ``total``, each within ``[floor, size]``.
+    """
+    sizes = [int(s) for s in sizes]
+    floors = [int(f) for f in floors]
+    fixed = [False] * len(sizes)
+    while True:
+        free = [c for c in range(len(sizes)) if not fixed[c]]
+        share = total - sum(f for f, done in zip(floors, fixed) if done)
+        weight = sum(sizes[c] for c in free)
+        low = [c for c in free if share * sizes[c] < floors[c] * weight]
+        if not low or not free:
+            break
+        for c in low:
+            fixed[c] = True
+    counts = list(floors)
+    if free and weight > 0:
+        remainders = []
+        for c in free:
+            counts[c], rest = divmod(share * sizes[c], weight)
+            remainders.append((-rest, c))
+        for _, c in sorted(remainders)[:share - sum(counts[c] for c in free)]:
+            counts[c] += 1
+    return np.asarray(counts, dtype=np.int64)
+
+
+def _pick(problem, ranking):
+    """``initial``, then the quota reservations and the best of the rest, in ``ranking`` order.
+
+    ranking : int64, pool nodes best first (``initial`` members are skipped).
+    """
+    rest = ranking[~np.isin(ranking, problem.initial)]
+    take = np.zeros(len(rest), dtype=bool)
+    labels = problem.label[rest]
+    for c, need in problem.deficits(problem.initial).items():
+        take[np.flatnonzero(labels == c)[:need]] = True
+    free = problem.k - len(problem.initial) - int(take.sum())
+    take[np.flatnonzero(~take)[:free]] = True
+    return np.concatenate([problem.initial, rest[take]]).astype(np.int64)
+
+
+def _by_score(problem, score):
+    """Pool nodes by decreasing ``score`` (aligned with ``pool``), ties to the lower index."""
+    return _pick(problem, problem.pool[np.argsort(-score, kind="stable")])
+
+
+def _with_quotas(problem, outcome, pool_targets):
+    """Meet the quotas after a greedy run (see the module docstring).
+
+    Returns (order, outcome or None, info); the outcome covers the report's targets.
+    """
+    order = problem.pool[outcome.order]
+    short = problem.deficits(order)
+    if not short:
+        return order, (None if pool_targets else outcome), {}
+    dropped = 0
+    if problem.radius is None:
+        order, dropped = _drop_surplus(problem, order, sum(short.values()))
+    covered = None
+    if not pool_targets:  # measure the kept picks once; each class's run then starts from them
+        covered = (outcome.dist, outcome.assign) if dropped == 0 else cover(
+            problem.target_source, problem.pool_rows[problem.pool_positions(order)], problem.seed)
+    for c, need in short.items():
+        members = problem.pool[(problem.pool_label == c) & ~np.isin(problem.pool, order)]
+        offer = np.concatenate([order, members])
+        rows = problem.pool_rows[problem.pool_positions(offer)]
+        outcome = greedy(None if pool_targets else problem.target_source, rows, len(order) + need,
+                         initial=np.arange(len(order)), pool_targets=pool_targets,
+                         seed=problem.seed, desc=f"quota {c}",
+                         allowed=np.arange(len(order), len(offer)), covered=covered)
+        order = offer[outcome.order]
+        covered = None if pool_targets else (outcome.dist, outcome.assign)
+    info = {"quota_swaps": {"dropped": dropped, "added": {str(c): n for c, n in short.items()}}}
+    return order, (None if pool_targets else outcome), info
+
+
+def _drop_surplus(problem, order, count):
+    """Drop the ``count`` latest picks that are neither included nor needed by a quota."""
+    have = Counter(problem.label[order].tolist())
+    keep = np.ones(len(order), dtype=bool)
+    dropped = 0
+    for i in range(len(order) - 1, len(problem.initial) - 1, -1):
+        if dropped == count:
+            break
+        c = int(problem.label[order[i]])
+        if have[c] > problem.quota.get(c, 0):
+            keep[i] = False
+            have[c] -= 1
+            dropped += 1
+    return order[keep], dropped
+
+
+def kcenter(problem):
+    """k-supplier greedy: targets are the target nodes, candidates the pool (3-approximation).
+
+    In radius mode, the shortest greedy prefix whose radius is at most ``problem.radius``.
+    """
+    radius_mode = problem.radius is not None
+    outcome = greedy(problem.target_source, problem.pool_rows,
+                     len(problem.pool) if radius_mode else problem.k,
+                     initial=problem.pool_positions(problem.initial), seed=problem.seed,
+                     radius=problem.radius)
+    if radius_mode and outcome.dist.max() > problem.radius:
+        best = outcome.dist.max()
+        # Rounded up, so that the value suggested does work.
+        text = f"{best:.6g}" if float(f"{best:.6g}") >= best else f"{best * (1 + 1e-5):.6g}"
+        raise InputError(f"--radius {problem.radius}: cannot be reached even with the whole pool "
+                         f"({len(problem.pool)} candidates); use --radius {text} or more")
+    order, covering, info = _with_quotas(problem, outcome, pool_targets=False)
+    return Choice(order, covering, {**info, "greedy": outcome.stats})
+
+
+def kcenter_pool(problem):
+    """Farthest-first over the pool itself, from a seeded random pool node (2-approximation)."""
+    start = problem.pool_positions(problem.initial)
+    if len(start) == 0:
+        start = np.random.default_rng(problem.seed).integers(len(problem.pool), size=1)
+    outcome = greedy(None, problem.pool_rows, problem.k, initial=start, pool_targets=True,
+                     seed=problem.seed, desc="kcenter-pool")
+    order, _, info = _with_quotas(problem, outcome, pool_targets=True)
+    return Choice(order, None, info)
+
+
+def random(problem):
+    """A uniform random sample of the pool (seeded)."""
+    rest = np.setdiff1d(problem.pool, problem.initial, assume_unique=True)
+    return Choice(_pick(problem, np.random.default_rng(problem.seed).permutation(rest)))
+
+
+def stratified(problem):
+    """A seeded random sample with the pool's class proportions (largest-remainder counts)."""
+    rng = np.random.default_rng(problem.seed)
+    classes, sizes = np.unique(problem.pool_label, return_counts=True)
+    included = Counter(problem.label[problem.initial].tolist())
+    floors = [max(included[c], problem.quota.get(c, 0)) for c in classes.tolist()]
+    counts = largest_remainder(problem.k, sizes, floors)
+    rest = np.setdiff1d(problem.pool, problem.initial, assume_unique=True)
+    rest_label = problem.label[rest]
+    drawn = [rng.permutation(rest[rest_label == c])[:n - included[c]]
+             for c, n in zip(classes.tolist(), counts.tolist())]
+    order = np.concatenate([problem.initial, rng.permutation(np.concatenate(drawn))])
+    return Choice(order.astype(np.int64), None, {"class_targets": {
+        str(c): int(n) for c, n in zip(classes.tolist(), counts.tolist())}})
+
+
+def degree(problem):
+    """Highest degree (number of neighbours) first."""
+    indptr = problem.store.load("graph", "indptr", mmap=False)
+    return Choice(_by_score(problem, np.diff(indptr)[problem.pool]))
+
+
+def pagerank(problem):
+    """Highest PageRank first."""
+    rank = problem.store.load("propagate", "pagerank", mmap=False)
+    return Choice(_by_score(problem, rank[problem.pool]))
+
+
+def entropy(problem):
+    """Highest predictive entropy of the proxy model trained on the pool first."""
+    score, info = entropy_scores(problem.pool_rows, problem.pool_label, chunk_rows=problem.proxy_rows)
+    return Choice(_by_score(problem, score), None, {"hardness": info})
+
+
+def el2n(problem):
+    """Highest EL2N score (Paul et al., 2021) first: mean early error norm over random starts."""
+    score, info = el2n_scores(problem.pool_rows, problem.pool_label, seed=problem.seed,
+                              chunk_rows=problem.proxy_rows)
+    return Choice(_by_score(problem, score), None, {"hardness": info})
+
+
+def age(problem):
+    """Highest AGE score (Cai et al., 2017) first: entropy, density and PageRank percentiles."""
+    rank = problem.store.load("propagate", "pagerank", mmap=False)
+    score, info = age_scores(problem.pool_rows, problem.pool_label, rank[problem.pool], problem.k,
+                             seed=problem.seed, chunk_rows=problem.proxy_rows)
+    return Choice(_by_score(problem, score), None, {"hardness": info})
+
+
+STRATEGIES = {
+    "kcenter": kcenter,
+    "kcenter-pool": kcenter_pool,
+    "random": random,
+    "stratified": stratified,
+    "degree": degree,
+    "pagerank": pagerank,
+    "entropy": entropy,
+    "el2n": el2n,
+    "age": age,
+}
+# Rules that hold the pool's feature rows (with an index, a sorted copy or the proxy's buffers).
+NEEDS_POOL_ROWS = {"kcenter", "kcenter-pool", "entropy", "el2n", "age"}
+# Rules that train the proxy model on the pool.
+NEEDS_PROXY = {"entropy", "el2n", "age"}

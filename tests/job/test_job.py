@@ -1,0 +1,48 @@
+"""The nightly job: selection options from the job file, and last night's selection kept."""
+import json
+
+import pyarrow.parquet as pq
+import pytest
+
+from bigprune.cli import main
+from bigprune.scenario.scenario import generate
+
+
+@pytest.fixture(scope="module")
+def data(tmp_path_factory):
+    root = tmp_path_factory.mktemp("night")
+    generate(root / "data", nodes=3000, seed=4)
+    return root
+
+
+def write_job(root, select_text):
+    (root / "job.toml").write_text(f"""
+store = "store"
+[ingest]
+edges = "data/edges"
+nodes = "data/nodes.parquet"
+[[select]]
+{select_text}
+""")
+    return root / "job.toml"
+
+
+def test_keep_previous_seeds_tonight_from_last_night(data, capsys):
+    job = write_job(data, 'strategy = "kcenter"\nbudget = 40\nout = "picks/k.parquet"\nkeep_previous = true')
+    assert main(["run", str(job), "--quiet"]) == 0
+    first = set(pq.read_table(data / "picks/k.parquet").column("node_id").to_pylist())
+    job.write_text(job.read_text().replace("budget = 40", "budget = 60"))  # tomorrow: a larger budget
+    assert main(["run", str(job), "--quiet"]) == 0
+    second = set(pq.read_table(data / "picks/k.parquet").column("node_id").to_pylist())
+    report = json.loads((data / "picks/k.json").read_text())
+    assert first <= second and len(second) == 60
+    assert report["changed"] == {"kept": 40, "added": 20, "dropped": 0}
+    log = [json.loads(line) for line in (data / "bigprune-log.jsonl").read_text().splitlines()]
+    assert log[-1]["changed"] == {"kept": 40, "added": 20, "dropped": 0}
+
+
+def test_radius_and_quota_options_from_the_job_file(data):
+    job = write_job(data, 'strategy = "random"\nbudget = 36\nmin_per_class = 3\nout = "picks/r.parquet"')
+    assert main(["run", str(job), "--quiet"]) == 0
+    labels = pq.read_table(data / "picks/r.parquet").column("label").to_pylist()
+    assert len(labels) == 36 and min(labels.count(c) for c in set(labels)) >= 3 and len(set(labels)) == 12

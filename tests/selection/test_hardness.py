@@ -1,0 +1,129 @@
+"""bigprune/hardness.py: entropy, EL2N and AGE scores against scipy, scikit-learn and numpy."""
+import numpy as np
+import pytest
+from scipy import stats
+from sklearn.datasets import load_iris
+from sklearn.linear_model import LogisticRegression
+
+from bigprune.selection.hardness import (age_scores, age_weights, density_scores, el2n_scores,
+                               entropy_scores, error_norms, percentiles, predictive_entropy)
+from bigprune.learning.proxy import fit_proxy
+
+
+@pytest.fixture(scope="module")
+def iris():
+    """scikit-learn's bundled iris (Fisher, 1936), labels shifted to show that any ints work,
+    and the converged scikit-learn model on the standardized features (C = 1 / l2 = 1)."""
+    x, y = load_iris(return_X_y=True)
+    x, y = x.astype(np.float32), y * 3 + 5
+    z = (x - x.mean(0, dtype=np.float64)) / x.std(0, dtype=np.float64)
+    model = LogisticRegression(C=1.0, max_iter=10000, tol=1e-10).fit(z, y)
+    return x, y, model.predict_proba(z), model.classes_
+
+
+def test_predictive_entropy_matches_scipy():
+    # reference: scipy.stats.entropy (natural log) of each probability row, zeros included
+    rng = np.random.default_rng(0)
+    p = rng.dirichlet(np.ones(5), size=50)
+    p[:5, 1:] = 0.0
+    p[:5, 0] = 1.0
+    np.testing.assert_allclose(predictive_entropy(p), stats.entropy(p.T), rtol=1e-12, atol=1e-15)
+
+
+def test_entropy_ranking_matches_sklearn(iris):
+    # reference: scipy.stats.entropy of sklearn LogisticRegression probabilities, ranked
+    x, y, probabilities, _ = iris
+    scores, info = entropy_scores(x, y)
+    expected = stats.entropy(probabilities.T)
+    np.testing.assert_allclose(scores, expected, atol=1e-4)
+    np.testing.assert_array_equal(np.argsort(-scores, kind="stable"),
+                                  np.argsort(-expected, kind="stable"))
+    assert info["proxy_iterations"] > 0
+
+
+def test_error_norms_follow_the_el2n_formula(iris):
+    # reference: Paul et al. (2021), EL2N = || p(x) - onehot(y) ||_2, in plain numpy on the
+    # sklearn probabilities
+    _, y, probabilities, classes = iris
+    onehot = (y[:, None] == classes[None, :]).astype(np.float64)
+    expected = np.linalg.norm(probabilities - onehot, axis=1)
+    np.testing.assert_allclose(error_norms(probabilities, classes, y), expected, rtol=1e-12)
+
+
+def test_el2n_scores_reach_sklearn_when_trained_to_convergence(iris):
+    # reference: the objective is strictly convex, so from any random start a converged fit is
+    # sklearn's LogisticRegression(C=1); EL2N on its probabilities computed with numpy
+    x, y, probabilities, classes = iris
+    onehot = (y[:, None] == classes[None, :]).astype(np.float64)
+    expected = np.linalg.norm(probabilities - onehot, axis=1)
+    scores, info = el2n_scores(x, y, runs=3, iterations=1000, seed=4)
+    np.testing.assert_allclose(scores, expected, atol=1e-4)
+    assert info["runs"] == 3 and all(0 < it < 1000 for it in info["proxy_iterations"])
+
+
+def test_el2n_early_scores_average_random_starts(iris):
+    # reference: the mean over runs of the EL2N formula (numpy) on proxies fitted directly with
+    # the documented random start, N(0, 1/d) weights and zero intercepts, for 3 iterations
+    x, y, _, classes = iris
+    scores, info = el2n_scores(x, y, runs=2, iterations=3, seed=9)
+    everyone = np.arange(len(y))
+    onehot = (y[:, None] == classes[None, :]).astype(np.float64)
+    each = []
+    for run in range(2):
+        rng = np.random.default_rng([9, run])
+        init = (rng.normal(scale=1 / 2.0, size=(4, 3)), np.zeros(3))
+        model = fit_proxy(x, y, everyone, max_iter=3, init=init)
+        each.append(np.linalg.norm(model.predict_proba(x, everyone) - onehot, axis=1))
+    np.testing.assert_allclose(scores, np.mean(each, axis=0), rtol=1e-10)
+    assert not np.allclose(each[0], each[1], atol=1e-3)  # the starts do differ
+    converged = el2n_scores(x, y, runs=1, iterations=1000)[0]
+    assert np.abs(scores - converged).max() > 1e-2  # early scores are not the converged ones
+
+
+def test_percentiles_match_scipy():
+    # reference: scipy.stats.percentileofscore(kind="strict"), the share strictly below
+    values = np.array([3.0, 1.0, 3.0, 2.0, 5.0, 1.0, 3.0])
+    expected = [stats.percentileofscore(values, v, kind="strict") / 100 for v in values]
+    np.testing.assert_allclose(percentiles(values), expected, rtol=1e-12)
+
+
+def test_density_uses_distance_to_the_cluster_mean():
+    # reference: tight, far-apart blobs, where k-means' optimum (Lloyd's fixed point) is the
+    # blob means; numpy distance of each point to its blob's mean
+    rng = np.random.default_rng(2)
+    centres = np.array([[0.0, 0.0, 0.0], [50.0, 0.0, 0.0], [0.0, 50.0, 0.0]])
+    blob = np.repeat(np.arange(3), 40)
+    rows = (centres[blob] + rng.normal(scale=0.5, size=(120, 3))).astype(np.float32)
+    means = np.stack([rows[blob == g].mean(0, dtype=np.float64) for g in range(3)])
+    expected = 1.0 / (1.0 + np.linalg.norm(rows - means[blob], axis=1))
+    np.testing.assert_allclose(density_scores(rows, 3, seed=1), expected, rtol=1e-4)
+
+
+@pytest.mark.parametrize("steps", [1, 7, 40, 300])
+def test_age_weights_are_the_mean_of_the_beta_schedule(steps):
+    # reference: scipy.stats.beta(1, 1.005 - 0.9**t).mean() averaged over the steps (Cai et
+    # al., 2017, schedule as recalled); alpha = beta split the rest
+    gamma = np.mean([stats.beta(1, 1.005 - 0.9 ** t).mean() for t in range(steps)])
+    alpha, beta, g = age_weights(steps)
+    assert g == pytest.approx(gamma, rel=1e-12)
+    assert alpha == beta == pytest.approx((1 - gamma) / 2, rel=1e-12)
+
+
+def test_age_scores_mix_the_three_percentiles(iris):
+    # reference: scipy percentiles (kind="strict") of entropy (scipy.stats.entropy of the proxy's
+    # probabilities), density and centrality, mixed with the documented weights
+    x, y, _, _ = iris
+    centrality = np.random.default_rng(5).random(len(y))
+    scores, info = age_scores(x, y, centrality, steps=12, seed=3)
+    everyone = np.arange(len(y))
+    entropy = stats.entropy(fit_proxy(x, y, everyone).predict_proba(x, everyone).T)
+    density = density_scores(x, 3, seed=3)
+
+    def share(v):
+        return np.array([stats.percentileofscore(v, e, kind="strict") / 100 for e in v])
+
+    w = info["weights"]
+    expected = (w["entropy"] * share(entropy) + w["density"] * share(density)
+                + w["pagerank"] * share(centrality))
+    np.testing.assert_allclose(scores, expected, rtol=0, atol=1e-12)
+    assert w["pagerank"] == pytest.approx(age_weights(12)[2])

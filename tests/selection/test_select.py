@@ -1,0 +1,588 @@
+"""bigprune/select.py and bigprune/strategies.py: validation, strategies, outputs."""
+import importlib
+import json
+import os
+from collections import Counter
+from fractions import Fraction
+
+import networkx as nx
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+import scipy.sparse as sp
+from scipy import stats
+from scipy.spatial.distance import cdist
+from sklearn.linear_model import LogisticRegression
+
+from bigprune.cli import main
+from bigprune.common.errors import InputError
+from bigprune.selection.hardness import el2n_scores
+from bigprune.selection.kcenter import greedy
+from bigprune.common.runtime import set_threads
+from bigprune.common.schema import NO_LABEL
+from bigprune.selection.select import parse_budget, select
+from bigprune.selection.strategies import STRATEGIES, largest_remainder
+from conftest import random_symmetric, write_graph_store
+
+select_module = importlib.import_module("bigprune.selection.select")  # the package's `select` is the function
+
+
+@pytest.fixture(autouse=True)
+def restore_threads():
+    yield
+    set_threads(None)
+
+
+def add_propagate(store):
+    """Commit a propagate stage: hop_1 = D^-1/2 (A+I) D^-1/2 X, PageRank from networkx."""
+    indptr, indices = store.load("graph", "indptr"), store.load("graph", "indices")
+    n = len(indptr) - 1
+    adj = sp.csr_matrix((np.ones(len(indices)), indices, indptr), shape=(n, n))
+    a = adj + sp.identity(n)
+    scale = sp.diags(1.0 / np.sqrt(np.asarray(a.sum(1)).ravel()))
+    hop = (scale @ a @ scale @ store.load("graph", "features").astype(np.float64)).astype(np.float32)
+    rank = nx.pagerank(nx.from_scipy_sparse_array(adj), alpha=0.85, tol=1e-12)
+    with store.begin("propagate", params={"hops": 1, "norm": "sym"}) as w:
+        w.save("hop_1", hop)
+        w.save("pagerank", np.array([rank[i] for i in range(n)], dtype=np.float64))
+    return store
+
+
+@pytest.fixture
+def store(small_store):
+    return add_propagate(small_store)
+
+
+def run(store, strategy="kcenter", budget=12, **kw):
+    return select(store, strategy, budget, threads=1, **kw)
+
+
+@pytest.mark.parametrize("strategy", sorted(STRATEGIES))
+def test_each_strategy_returns_k_distinct_pool_nodes(store, strategy):
+    split = store.load("graph", "split")
+    picked = run(store, strategy, 17)["indices"]
+    assert len(picked) == 17 and len(np.unique(picked)) == 17
+    assert np.all(split[picked] == 1)
+
+
+@pytest.mark.parametrize("strategy", ["degree", "pagerank"])
+def test_ranking_strategies_match_numpy_argsort(store, strategy):
+    # reference: numpy stable argsort of the negated score over the pool (ties: lower index)
+    pool = np.flatnonzero(store.load("graph", "split") == 1)
+    score = (np.diff(store.load("graph", "indptr")) if strategy == "degree"
+             else store.load("propagate", "pagerank"))
+    expected = pool[np.argsort(-score[pool], kind="stable")][:20]
+    np.testing.assert_array_equal(run(store, strategy, 20)["indices"], expected)
+
+
+def test_random_is_seeded(store):
+    a, b = run(store, "random", 20, seed=3)["indices"], run(store, "random", 20, seed=3)["indices"]
+    np.testing.assert_array_equal(a, b)
+    assert not np.array_equal(a, run(store, "random", 20, seed=4)["indices"])
+
+
+def test_kcenter_uses_last_hop_by_default_and_hop_zero_on_request(store):
+    # reference: the greedy run directly on the rows of the chosen embedding
+    split = store.load("graph", "split")
+    pool, targets = np.flatnonzero(split == 1), np.flatnonzero(split == 3)
+    for hop, name in [(None, "hop_1"), (0, "features")]:
+        rows = store.load("propagate" if hop is None else "graph", name)
+        direct = greedy(rows[targets], rows[pool], 10, exact=True)
+        result = run(store, "kcenter", 10, embedding_hop=hop)
+        np.testing.assert_array_equal(result["indices"], pool[direct.order])
+        assert result["embedding"] == ("hop_1" if hop is None else "hop_0")
+
+
+def test_initial_ids_come_first(store):
+    ids = pq.read_table(store.stage_dir("graph") / "node_id.parquet").column("node_id").to_numpy()
+    for strategy in STRATEGIES:
+        picked = run(store, strategy, 10, initial=[ids[5], ids[40]])["indices"]
+        assert list(picked[:2]) == [5, 40] and len(np.unique(picked)) == 10
+
+
+def test_unlabeled_targets_are_nodes_without_split(store):
+    assert run(store, "random", 5, targets="unlabeled")["targets"] == 60
+    assert run(store, "random", 5, targets="valid")["targets"] == 30
+
+
+@pytest.mark.parametrize("budget,k", [(0.1, 12), ("0.25", 30), (5, 5), ("7", 7), (120, 120),
+                                      (1, 1), (0.001, 1)])
+def test_budget_parsing(budget, k):
+    assert parse_budget(budget, 120) == k
+
+
+@pytest.mark.parametrize("budget", [0, -3, float("nan"), "nan", 2.5, "abc", None, True])
+def test_budget_errors(budget):
+    with pytest.raises(InputError) as err:
+        parse_budget(budget, 120)
+    assert str(err.value) == (f"--budget {budget}: use a fraction between 0 and 1 of the training "
+                              f"pool or a whole count from 1 to 120 (the pool size)")
+
+
+def test_budget_larger_than_pool(store):
+    with pytest.raises(InputError) as err:
+        run(store, "random", 121)
+    assert str(err.value) == ("--budget 121: larger than the training pool (120 nodes); "
+                              "use at most 120 or a fraction below 1")
+
+
+def test_option_errors(store, tmp_path):
+    cases = [
+        (dict(strategy="best"), "--strategy best: unknown; use one of kcenter, kcenter-pool, "
+                                "random, stratified, degree, pagerank, entropy, el2n, age"),
+        (dict(targets="train"), "--targets train: unknown; use one of test, valid, unlabeled"),
+        (dict(out=tmp_path / "sel.csv"), f"--out {tmp_path / 'sel.csv'}: must end in .parquet"),
+        (dict(out=store.path / "sel.parquet"),
+         f"--out {store.path / 'sel.parquet'}: inside the store directory {store.path}; "
+         f"write it elsewhere"),
+        (dict(embedding_hop=2), "--embedding-hop 2: the propagate stage holds hops 0 to 1; use "
+                                "one of those or rerun bigprune propagate with more hops"),
+        (dict(initial=[3]), "--initial: node 3 is not in the training pool; give ids of nodes "
+                            "with split train and a label"),
+    ]
+    for options, message in cases:
+        args = {"strategy": "random", **options}
+        with pytest.raises(InputError) as err:
+            run(store, budget=5, **args)
+        assert str(err.value) == message
+
+
+def test_no_targets_and_no_pool(tmp_path):
+    adj = sp.csr_matrix(np.ones((4, 4)))
+    features = np.eye(4)
+    label = np.array([0, 1, NO_LABEL, NO_LABEL])
+    store = add_propagate(write_graph_store(tmp_path / "a", adj, features, [1, 1, 3, 0], label))
+    with pytest.raises(InputError) as err:
+        run(store, "random", 1, targets="valid")
+    assert str(err.value) == "--targets valid: no node is in this set; choose another (test, unlabeled)"
+    store = add_propagate(write_graph_store(tmp_path / "b", adj, features, [2, 2, 3, 0], label))
+    with pytest.raises(InputError) as err:
+        run(store, "random", 1)
+    assert str(err.value) == (f"--store {store.path}: no labelled node has split train, so the "
+                              f"training pool is empty; mark training nodes in the node table's "
+                              f"split column")
+
+
+def test_output_files_and_columns(store, tmp_path):
+    out = tmp_path / "picked.parquet"
+    result = run(store, "kcenter", 15, out=out)
+    table = pq.read_table(out)
+    assert table.column_names == ["node_id", "rank", "label"]
+    assert str(table.schema.field("rank").type) == "int64"
+    assert str(table.schema.field("label").type) == "int64"
+    picked = result["indices"]
+    np.testing.assert_array_equal(table.column("node_id").to_numpy(), picked * 7 + 100)
+    np.testing.assert_array_equal(table.column("rank").to_numpy(), np.arange(15))
+    np.testing.assert_array_equal(table.column("label").to_numpy(), store.load("graph", "label")[picked])
+    report = json.loads(out.with_suffix(".json").read_text())
+    assert report == json.loads(json.dumps({k: v for k, v in result.items() if k != "indices"}))
+    assert sorted(os.listdir(tmp_path)) == ["picked.json", "picked.parquet", "store"]
+
+
+def test_no_files_left_when_writing_fails(store, tmp_path, monkeypatch):
+    calls = []
+    real_replace = os.replace
+
+    def failing_replace(src, dst):
+        calls.append(dst)
+        if len(calls) == 2:
+            raise OSError("disk full")
+        real_replace(src, dst)
+
+    monkeypatch.setattr(select_module.os, "replace", failing_replace)
+    with pytest.raises(OSError):
+        run(store, "random", 5, out=tmp_path / "picked.parquet")
+    assert sorted(os.listdir(tmp_path)) == ["store"]
+
+
+def test_no_files_left_when_a_strategy_fails(store, tmp_path, monkeypatch):
+    def broken(problem):
+        raise RuntimeError("boom")
+
+    monkeypatch.setitem(STRATEGIES, "random", broken)
+    with pytest.raises(RuntimeError):
+        run(store, "random", 5, out=tmp_path / "picked.parquet")
+    assert sorted(os.listdir(tmp_path)) == ["store"]
+
+
+# ---- constraints: quotas, include and exclude lists, radius mode ----------------------------
+@pytest.fixture
+def skewed(tmp_path):
+    """260 nodes, classes in proportions ~ 60/25/10/5 %: 140 train, 20 valid, 100 test.
+
+    Train class 3 has 5 nodes, so a quota of 4 binds for every rule at budget 16.
+    """
+    rng = np.random.default_rng(11)
+    n = 260
+    label = rng.choice(4, size=n, p=[0.6, 0.25, 0.1, 0.05])
+    label[:5] = 3
+    label[5:140][label[5:140] == 3] = 0
+    features = rng.normal(size=(n, 6)) + 1.5 * label[:, None]
+    split = np.zeros(n, dtype=np.int8)
+    split[:140], split[140:160], split[160:] = 1, 2, 3
+    label = np.where(split == 3, NO_LABEL, label)
+    adj = random_symmetric(n, 0.04, rng)
+    return add_propagate(write_graph_store(tmp_path / "skewed", adj, features, split, label))
+
+
+def id_file(path, dense):
+    """A Parquet file with the user's ids (dense * 7 + 100, as the fixtures write them)."""
+    pq.write_table(pa.table({"node_id": np.asarray(dense, dtype=np.int64) * 7 + 100}), path)
+    return path
+
+
+@pytest.mark.parametrize("strategy", sorted(STRATEGIES))
+def test_every_rule_meets_budget_quotas_include_and_exclude(skewed, tmp_path, strategy):
+    # reference: the issue's contract, checked with numpy set operations and collections.Counter
+    label = skewed.load("graph", "label")
+    pool = np.flatnonzero(skewed.load("graph", "split") == 1)
+    include = [17, 3, 60]                     # node 3 is of the rare class 3
+    exclude = [0, 1, 40, 41, 42, 200]         # 200 is a test node: outside the pool, allowed
+    result = run(skewed, strategy, 16, min_per_class=4,
+                 include=id_file(tmp_path / "inc.parquet", include),
+                 exclude=id_file(tmp_path / "exc.parquet", exclude))
+    picked = result["indices"]
+    assert len(picked) == 16 and len(np.unique(picked)) == 16
+    assert np.isin(picked, pool).all() and not np.isin(picked, exclude).any()
+    assert list(picked[:3]) == include
+    available = Counter(label[np.setdiff1d(pool, exclude)].tolist())
+    counts = Counter(label[picked].tolist())
+    assert available[3] == 3  # two of the five rare nodes are excluded: the quota is capped
+    for c, size in available.items():
+        assert counts[c] >= min(4, size)
+    assert result["changed"] == {"kept": 3, "added": 13, "dropped": 0}
+    constraints = result["constraints"]
+    assert constraints["include"]["nodes"] == 3
+    assert constraints["exclude"] == {"file": str(tmp_path / "exc.parquet"), "nodes": 5,
+                                      "outside_pool": 1}
+    assert constraints["min_per_class"]["counts"] == {"0": 4, "1": 4, "2": 4, "3": 3}
+    assert result["pool"] == len(pool) - 5
+
+
+@pytest.mark.parametrize("strategy", ["random", "degree", "kcenter", "kcenter-pool", "entropy"])
+def test_quotas_bind_where_the_rule_alone_misses_a_class(skewed, strategy):
+    # reference: collections.Counter of the labels, with and without the quota
+    label = skewed.load("graph", "label")
+    free = Counter(label[run(skewed, strategy, 16)["indices"]].tolist())
+    held = Counter(label[run(skewed, strategy, 16, min_per_class=4)["indices"]].tolist())
+    assert min(held[c] for c in range(4)) >= 4
+    assert min(free[c] for c in range(4)) < 4  # the quota changed something
+
+
+def hamilton(total, sizes):
+    """Largest-remainder (Hamilton) apportionment with exact fractions; ties to the first."""
+    quotas = [Fraction(total * s, sum(sizes)) for s in sizes]
+    seats = [q.numerator // q.denominator for q in quotas]
+    by_remainder = sorted(range(len(sizes)), key=lambda i: -(quotas[i] - seats[i]))
+    for i in by_remainder[:total - sum(seats)]:
+        seats[i] += 1
+    return seats
+
+
+@pytest.mark.parametrize("budget", [1, 7, 16, 57, 140])
+def test_stratified_counts_are_the_largest_remainder_rounding(skewed, budget):
+    # reference: Hamilton's largest-remainder method with exact fractions (hamilton above)
+    label = skewed.load("graph", "label")
+    pool = np.flatnonzero(skewed.load("graph", "split") == 1)
+    classes, sizes = np.unique(label[pool], return_counts=True)
+    expected = hamilton(budget, sizes.tolist())
+    counts = Counter(label[run(skewed, "stratified", budget, seed=5)["indices"]].tolist())
+    for c, want in zip(classes.tolist(), expected):
+        assert abs(counts[c] - want) <= 1
+        assert counts[c] == want  # no constraint: exactly Hamilton's rounding
+
+
+def test_largest_remainder_with_floors():
+    # reference: Hamilton's method (hamilton above) when no floor binds; otherwise the contract:
+    # the sum is the total, every count lies in [floor, size], and classes not raised to their
+    # floor keep Hamilton's share of what is left within one
+    rng = np.random.default_rng(0)
+    for _ in range(300):
+        sizes = rng.integers(1, 40, size=rng.integers(1, 6))
+        total = int(rng.integers(1, sizes.sum() + 1))
+        np.testing.assert_array_equal(largest_remainder(total, sizes, np.zeros_like(sizes)),
+                                      hamilton(total, sizes.tolist()))
+        floors = np.minimum(sizes, rng.integers(0, 6, size=len(sizes)))
+        if floors.sum() > total:
+            continue
+        counts = largest_remainder(total, sizes, floors)
+        assert counts.sum() == total and (counts >= floors).all() and (counts <= sizes).all()
+        free = counts > floors
+        if free.any():
+            left = total - floors[~free].sum()
+            share = left * sizes[free] / sizes[free].sum()
+            assert (np.abs(counts[free] - share) < 1 + 1e-9).all()
+
+
+def test_stratified_is_seeded(skewed):
+    a = run(skewed, "stratified", 20, seed=1)["indices"]
+    np.testing.assert_array_equal(a, run(skewed, "stratified", 20, seed=1)["indices"])
+    assert not np.array_equal(a, run(skewed, "stratified", 20, seed=2)["indices"])
+
+
+def test_entropy_rule_ranks_by_sklearn_entropy(skewed):
+    # reference: scipy.stats.entropy of sklearn LogisticRegression(C=1) probabilities on the
+    # standardized last hop of the pool, ranked highest first
+    pool = np.flatnonzero(skewed.load("graph", "split") == 1)
+    rows = skewed.load("propagate", "hop_1")[pool].astype(np.float64)
+    z = (rows - rows.mean(0)) / rows.std(0)
+    y = skewed.load("graph", "label")[pool]
+    p = LogisticRegression(C=1.0, max_iter=10000, tol=1e-10).fit(z, y).predict_proba(z)
+    expected = pool[np.argsort(-stats.entropy(p.T), kind="stable")][:25]
+    result = run(skewed, "entropy", 25)
+    np.testing.assert_array_equal(result["indices"], expected)
+    assert result["hardness"]["proxy_iterations"] > 0
+
+
+def test_el2n_rule_ranks_by_its_scores(skewed):
+    # reference: numpy stable argsort of el2n_scores run directly on the pool's last hop
+    pool = np.flatnonzero(skewed.load("graph", "split") == 1)
+    rows = skewed.load("propagate", "hop_1")[pool]
+    scores, _ = el2n_scores(rows, skewed.load("graph", "label")[pool], seed=3)
+    result = run(skewed, "el2n", 25, seed=3)
+    np.testing.assert_array_equal(result["indices"], pool[np.argsort(-scores, kind="stable")][:25])
+    assert result["hardness"]["runs"] == 5
+
+
+def test_kcenter_quota_swaps_keep_the_greedy_prefix(skewed):
+    # reference: the greedy run directly (bigprune.selection.kcenter.greedy, checked against a numpy
+    # greedy in test_kcenter): the kept picks are its order minus the latest over-quota picks
+    label = skewed.load("graph", "label")
+    split = skewed.load("graph", "split")
+    pool, targets = np.flatnonzero(split == 1), np.flatnonzero(split == 3)
+    rows = skewed.load("propagate", "hop_1")
+    plain = pool[greedy(rows[targets], rows[pool], 16, exact=True).order]
+    result = run(skewed, "kcenter", 16, min_per_class=4)
+    picked = result["indices"]
+    swaps = result["quota_swaps"]
+    dropped, added = swaps["dropped"], sum(swaps["added"].values())
+    assert dropped == added > 0
+    kept = picked[:16 - added]
+    assert np.isin(kept, plain).all()
+    np.testing.assert_array_equal(kept, plain[np.isin(plain, kept)])  # same order
+    gone = plain[~np.isin(plain, kept)]
+    assert len(gone) == dropped
+    # Dropping walks back from the last pick and skips classes at (or under) their quota: a
+    # dropped pick's later classmates are dropped too, and a kept pick after the first dropped
+    # one belongs to a class left at most at its quota.
+    have = Counter(label[kept].tolist())
+    position = {node: i for i, node in enumerate(plain)}
+    for g in gone:
+        later = plain[position[g] + 1:]
+        assert np.isin(later[label[later] == label[g]], gone).all()
+        assert have[label[g]] >= 4
+    first = min(position[g] for g in gone)
+    assert all(have[label[node]] <= 4 for node in plain[first:] if node in kept)
+    extra = picked[16 - added:]
+    assert Counter(label[extra].tolist()) == {int(c): n for c, n in swaps["added"].items()}
+    # the coverage carried through the swaps is the exact one (reference: scipy cdist)
+    d = cdist(rows[targets].astype(np.float64), rows[picked].astype(np.float64)).min(1)
+    assert result["coverage"]["radius"] == pytest.approx(d.max(), rel=1e-9)
+    assert result["coverage"]["mean"] == pytest.approx(d.mean(), rel=1e-9)
+
+
+def test_radius_mode_is_the_shortest_greedy_prefix(skewed):
+    # reference: scipy.spatial.distance.cdist from every target to the chosen nodes
+    split = skewed.load("graph", "split")
+    targets = np.flatnonzero(split == 3)
+    rows = skewed.load("propagate", "hop_1").astype(np.float64)
+    full = run(skewed, "kcenter", 30)
+    radius = 0.5 * (full["coverage"]["radius"] + run(skewed, "kcenter", 29)["coverage"]["radius"])
+    result = run(skewed, "kcenter", None, radius=radius)
+    picked = result["indices"]
+    assert cdist(rows[targets], rows[picked]).min(1).max() <= radius
+    assert cdist(rows[targets], rows[picked[:-1]]).min(1).max() > radius
+    assert result["constraints"]["radius"] == radius and result["budget"] is None
+    assert result["coverage"]["radius"] <= radius
+
+
+def test_radius_mode_with_include_and_quotas(skewed, tmp_path):
+    # reference: cdist radius of the greedy prefix; Counter of labels for the quota picks
+    label = skewed.load("graph", "label")
+    split = skewed.load("graph", "split")
+    targets = np.flatnonzero(split == 3)
+    rows = skewed.load("propagate", "hop_1").astype(np.float64)
+    radius = run(skewed, "kcenter", 10)["coverage"]["radius"]
+    result = run(skewed, "kcenter", None, radius=radius, min_per_class=3,
+                 include=id_file(tmp_path / "inc.parquet", [80, 81]))
+    picked = result["indices"]
+    added = sum(result["quota_swaps"]["added"].values())
+    prefix = picked[:len(picked) - added]
+    assert list(picked[:2]) == [80, 81] and result["quota_swaps"]["dropped"] == 0
+    assert cdist(rows[targets], rows[prefix]).min(1).max() <= radius
+    assert cdist(rows[targets], rows[prefix[:-1]]).min(1).max() > radius
+    assert min(Counter(label[picked].tolist())[c] for c in range(4)) >= 3
+
+
+def test_radius_that_cannot_be_reached(skewed):
+    # reference: cdist from every target to the whole pool: the smallest reachable radius
+    split = skewed.load("graph", "split")
+    rows = skewed.load("propagate", "hop_1").astype(np.float64)
+    best = cdist(rows[split == 3], rows[split == 1]).min(1).max()
+    with pytest.raises(InputError) as err:
+        run(skewed, "kcenter", None, radius=best * 0.99)
+    assert str(err.value).startswith(f"--radius {best * 0.99}: cannot be reached even with the "
+                                     f"whole pool (140 candidates); use --radius ")
+    suggested = float(str(err.value).split("use --radius ")[1].split()[0])
+    assert suggested >= best
+    assert run(skewed, "kcenter", None, radius=suggested)["coverage"]["radius"] <= suggested
+
+
+def test_constraint_errors(skewed, tmp_path):
+    inc = id_file(tmp_path / "inc.parquet", [5, 6])
+    exc = id_file(tmp_path / "exc.parquet", [6, 7])
+    pq.write_table(pa.table({"id": [100]}), tmp_path / "noid.parquet")
+    pq.write_table(pa.table({"node_id": ["a"]}), tmp_path / "strings.parquet")
+    (tmp_path / "junk.parquet").write_text("not parquet")
+    twice = id_file(tmp_path / "twice.parquet", [5, 9, 5])
+    test_node = id_file(tmp_path / "test.parquet", [5, 200])
+    unknown = id_file(tmp_path / "unknown.parquet", [5, 9999])
+    every = id_file(tmp_path / "every.parquet", np.arange(140))
+    many = id_file(tmp_path / "many.parquet", np.arange(20))
+    cases = [
+        (dict(include=test_node), f"--include {test_node}: node 1500 is not in the training pool; "
+                                  f"give ids of nodes with split train and a label"),
+        (dict(include=unknown), f"--include {unknown}: node 70093 is not in the training pool; "
+                                f"give ids of nodes with split train and a label"),
+        (dict(include=twice), f"--include {twice}: node 135 appears twice; list each node once"),
+        (dict(include=many), f"--include {many}: 20 nodes, more than the budget 12; raise "
+                             f"--budget to at least 20 or shorten the file"),
+        (dict(include=inc, exclude=exc), f"--include {inc}: node 142 is also in --exclude {exc}; "
+                                         f"a node cannot be both"),
+        (dict(include=tmp_path / "none.parquet"), f"--include {tmp_path / 'none.parquet'}: no such file"),
+        (dict(include=tmp_path / "junk.parquet"),
+         f"--include {tmp_path / 'junk.parquet'}: not a readable Parquet file (Parquet magic bytes not "
+         f"found in footer. Either the file is corrupted or this is not a parquet file.)"),
+        (dict(exclude=tmp_path / "noid.parquet"),
+         f"--exclude {tmp_path / 'noid.parquet'}: no node_id column; give a Parquet file with one "
+         f"(a bigprune selection has it)"),
+        (dict(exclude=tmp_path / "strings.parquet"),
+         f"--exclude {tmp_path / 'strings.parquet'}: node_id holds string values but the store's "
+         f"ids are int64; write the ids as int64"),
+        (dict(exclude=unknown), f"--exclude {unknown}: node 70093 is not in the graph; give ids "
+                                f"from the node table"),
+        (dict(exclude=every), f"--exclude {every}: removes every training pool node; nothing is "
+                              f"left to choose"),
+        (dict(budget=130, exclude=many), f"--budget 130: 130 picks, but only 120 pool nodes remain "
+                                         f"after --exclude {many}; use at most 120"),
+        (dict(min_per_class=4), "--min-per-class 4: 4 classes need 16 picks, more than the budget "
+                                "12; use at most 3 or raise --budget"),
+        (dict(min_per_class=10**9), "--min-per-class 1000000000: 4 classes need 140 picks, more "
+                                    "than the budget 12; use at most 3 or raise --budget"),
+        (dict(min_per_class=3, include=inc), None),
+        (dict(min_per_class="0.4"), "--min-per-class 0.4: 4 classes need 20 picks, more than the "
+                                    "budget 12; use at most 3 or raise --budget"),
+        (dict(min_per_class="2.5"), "--min-per-class 2.5: use a whole count >= 1 or a fraction of "
+                                    "the budget between 0 and 1"),
+        (dict(min_per_class=0), "--min-per-class 0: use a whole count >= 1 or a fraction of the "
+                                "budget between 0 and 1"),
+        (dict(budget=None), "--budget: required (a fraction of the training pool or a count) "
+                            "unless --radius is given with --strategy kcenter"),
+        (dict(radius=1.0), "--radius 1.0: give --budget or --radius, not both; the radius mode "
+                           "picks as many nodes as it needs"),
+        (dict(budget=None, radius=1.0, strategy="random"),
+         "--radius 1.0: only --strategy kcenter has a radius mode; use kcenter or give --budget "
+         "instead"),
+        (dict(budget=None, radius="-1"), "--radius -1: use a distance >= 0 in the embedding's "
+                                         "units (a report's coverage radius shows the scale)"),
+        (dict(budget=None, radius=1.0, min_per_class=0.2),
+         "--min-per-class 0.2: a fraction of the budget needs --budget; with --radius give a "
+         "whole count"),
+        (dict(include=inc, initial=[135]), f"--include {inc}: give either an include file or "
+                                           f"initial ids, not both"),
+    ]
+    for options, message in cases:
+        args = {"strategy": "kcenter", "budget": 12, **options}
+        if message is None:  # 4 classes x 3 = 12 picks, two of them already included: fits
+            assert len(run(skewed, **args)["indices"]) == 12
+            continue
+        with pytest.raises(InputError) as err:
+            run(skewed, **args)
+        assert str(err.value) == message
+
+
+def test_quota_with_include_counts_the_included(skewed, tmp_path):
+    # All five rare-class nodes are included: that class takes 5 slots, not its quota of 4,
+    # so 4 + 4 + 4 + 5 = 17 picks are needed (hand count; labels fixed by the fixture).
+    inc = id_file(tmp_path / "inc.parquet", [0, 1, 2, 3, 4])
+    with pytest.raises(InputError) as err:
+        run(skewed, "random", 16, min_per_class=4, include=inc)
+    assert str(err.value) == ("--min-per-class 4: 4 classes need 17 picks with the include list, "
+                              "more than the budget 16; use at most 3 or raise --budget")
+    picked = run(skewed, "random", 17, min_per_class=4, include=inc)["indices"]
+    counts = Counter(skewed.load("graph", "label")[picked].tolist())
+    assert counts == {0: 4, 1: 4, 2: 4, 3: 5}
+
+
+def test_command_line_constraints_and_radius(skewed, tmp_path, capsys):
+    # reference: the report the library returns for the same options
+    inc = id_file(tmp_path / "inc.parquet", [5, 6])
+    exc = id_file(tmp_path / "exc.parquet", [7])
+    out = tmp_path / "cli.parquet"
+    assert main(["select", "--store", str(skewed.path), "--strategy", "stratified", "--budget",
+                 "20", "--include", str(inc), "--exclude", str(exc), "--min-per-class", "0.1",
+                 "--out", str(out), "--quiet", "--threads", "1"]) == 0
+    report = json.loads(out.with_suffix(".json").read_text())
+    assert report["constraints"]["min_per_class"]["counts"] == {"0": 2, "1": 2, "2": 2, "3": 2}
+    assert report["changed"] == {"kept": 2, "added": 18, "dropped": 0}
+    table = pq.read_table(out)
+    assert table.column("node_id").to_pylist()[:2] == [135, 142]
+    capsys.readouterr()
+    assert main(["select", "--store", str(skewed.path), "--strategy", "kcenter", "--radius",
+                 "1e-9", "--out", str(out), "--quiet", "--threads", "1"]) == 2
+    assert "--radius 1e-09: cannot be reached even with the whole pool" in capsys.readouterr().err
+
+
+def test_restricted_propagation_refuses_uncomputed_targets(tmp_path, capsys):
+    """propagate --restrict computes the last hops only for pool, valid and test rows: selecting
+    for unsplit targets must refuse instead of reading the rows it skipped."""
+    from bigprune.cli import main
+    from bigprune.propagation.propagate import propagate
+    from conftest import random_symmetric
+
+    rng = np.random.default_rng(5)
+    n = 200
+    split = np.zeros(n, dtype=np.int8)
+    split[:60], split[60:80] = 1, 3
+    label = np.where(split == 1, rng.integers(0, 3, n), NO_LABEL)
+    store = write_graph_store(tmp_path / "s", random_symmetric(n, 0.01, rng), rng.normal(size=(n, 4)), split, label)
+    propagate(store, hops=2, restrict=True)
+    args = ["select", "--store", str(tmp_path / "s"), "--strategy", "random", "--budget", "5", "--quiet"]
+    assert main(args + ["--out", str(tmp_path / "a.parquet")]) == 0
+    assert main(args + ["--targets", "unlabeled", "--out", str(tmp_path / "b.parquet")]) == 2
+    assert "rerun bigprune propagate --no-restrict" in capsys.readouterr().err
+
+
+# ---- targets kept on disk when their rows do not fit the budget -----------------------------
+@pytest.mark.parametrize("strategy,options", [("kcenter", {}), ("kcenter", {"min_per_class": 4}),
+                                              ("random", {})])
+def test_targets_on_disk_give_the_same_selection_and_coverage(skewed, monkeypatch, strategy, options):
+    # reference: the in-memory run (checked against a plain numpy greedy in test_kcenter) and
+    # scipy cdist coverage of the chosen nodes
+    memory = run(skewed, strategy, 16, **options)
+    assert memory["targets_in_memory"]
+    monkeypatch.setattr(select_module, "_in_memory_bytes", lambda targets, width: 1 << 50)
+    monkeypatch.setattr(select_module, "GROUP_ROWS", 7)
+    disk = run(skewed, strategy, 16, memory_budget="1GiB", **options)
+    assert not disk["targets_in_memory"]
+    np.testing.assert_array_equal(disk["indices"], memory["indices"])
+    assert disk["coverage"] == memory["coverage"] and disk["load"] == memory["load"]
+    hop = skewed.load("propagate", "hop_1").astype(np.float64)
+    targets = np.flatnonzero(skewed.load("graph", "split") == 3)
+    d = cdist(hop[targets], hop[disk["indices"]]).min(1)
+    assert disk["coverage"]["radius"] == pytest.approx(d.max(), rel=1e-6)
+    assert not any((skewed.path / ".staging").glob("select-*"))  # scratch removed
+
+
+def test_refuses_when_even_targets_on_disk_do_not_fit(skewed, monkeypatch, capsys):
+    monkeypatch.setattr(select_module, "_in_memory_bytes", lambda targets, width: 1 << 50)
+    monkeypatch.setattr(select_module, "_on_disk_bytes", lambda *args: 3 << 30)
+    assert main(["select", "--store", str(skewed.path), "--strategy", "kcenter", "--budget", "5",
+                 "--memory-budget", "2GiB", "--out", str(skewed.path.parent / "x.parquet"),
+                 "--quiet"]) == 3
+    err = capsys.readouterr().err
+    # 3 GiB of state + 320 MiB fixed overhead + the pool's rows and one chunk, rounded up
+    assert ("--memory-budget 2.0 GiB is too small for select --strategy kcenter with 100 targets, "
+            "even with their rows kept on disk: use at least 3.4 GiB") in err
+    assert not run(skewed, "kcenter", 5, memory_budget="3.4GiB")["targets_in_memory"]
