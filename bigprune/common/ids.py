@@ -6,7 +6,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from .errors import InputError
-from ..ingestion.sources import open_parquet
+from .sources import open_parquet
 
 
 def read_id_file(path, option, columns=("node_id",)):

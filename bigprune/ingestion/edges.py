@@ -11,7 +11,7 @@ from .csrbuild import EdgeRows, build_in_blocks, build_in_memory, count_dtype, i
 from ..kernels.csr import count_endpoints
 from ..common.memory import format_size
 from ..common.runtime import progress
-from .sources import first_damaged, id_kind, is_numeric, open_parquet
+from ..common.sources import first_damaged, id_kind, is_numeric, open_parquet
 
 
 class EdgeFiles:

@@ -14,7 +14,7 @@ from .idrows import hashable, hashed_rows, table_bytes
 from ..common.memory import DEFAULT_BUDGET, FIXED_OVERHEAD, MIB, format_size, parse_size, peak_rss, working_memory
 from .nodetable import NodeTable, copy_npy_features
 from ..common.runtime import set_threads
-from .sources import edge_files, regular_file
+from ..common.sources import edge_files, regular_file
 from ..common.store import Store
 
 

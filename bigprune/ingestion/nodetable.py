@@ -11,7 +11,7 @@ from ..common.errors import InputError
 from .idrows import IdTable, streamed
 from ..common.memory import MIB, chunk_ranges, rows_per_chunk
 from ..common.schema import NO_LABEL, NO_SPLIT, SPLIT_CODES
-from .sources import id_kind, is_numeric, open_parquet, read_error
+from ..common.sources import id_kind, is_numeric, open_parquet, read_error
 
 # Rows of ids, splits and labels read at a time (~25 MB of columns).
 READ_ROWS = 1 << 20

@@ -12,7 +12,7 @@ from .config import load_job
 from ..common.errors import BigpruneError, InputError
 from ..common.fingerprint import fingerprints, key
 from ..common.memory import peak_rss
-from ..ingestion.sources import edge_files
+from ..common.sources import edge_files
 from ..common.store import Store
 
 

@@ -6,7 +6,7 @@ from pathlib import Path
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from ..common.errors import InputError
+from .errors import InputError
 
 
 def edge_files(spec):
