@@ -103,8 +103,9 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
              "threads": threads, "constraints": constraints,
              "targets_in_memory": chunk is None}
     try:
+        rule_bytes = memory - FIXED_OVERHEAD - _common_bytes(strategy, len(pool), k, width, classes)
         problem = Problem(store, pool, chosen_targets, k, start, int(seed), embedding, window_rows,
-                          label, quota, radius, proxy_rows, chunk)
+                          label, quota, radius, proxy_rows, chunk, rule_bytes)
         return _select(problem, strategy, label, out, started, extra)
     finally:
         if scratch is not None:

@@ -26,7 +26,10 @@ import numpy as np
 from ..common.errors import InputError
 from .hardness import age_scores, el2n_scores, entropy_scores
 from .kcenter import RowChunks, cover, greedy
-from ..common.memory import chunk_ranges
+from .kmeans import clusters, serve
+from .kmedian import PAIR_BYTES, neighbour_lists, plan_neighbours
+from .kmedian import greedy as facility_greedy
+from ..common.memory import chunk_ranges, rows_per_chunk
 
 Choice = namedtuple("Choice", "order outcome info", defaults=(None, None))
 Choice.__doc__ = """order : int64 (k,), dense indices. outcome : the kcenter ``Outcome`` whose
@@ -64,6 +67,7 @@ class Problem:
     radius: float = None
     proxy_rows: int = 65536
     target_chunk: tuple = None
+    rule_bytes: int = 1 << 30
 
     def rows(self, index):
         """Rows ``index`` (sorted int64) of the embedding as float32 (len, d).
@@ -105,6 +109,17 @@ class Problem:
     @cached_property
     def pool_label(self):
         return self.label[self.pool]
+
+    def read_targets(self, positions):
+        """Rows of the targets at ``positions`` (sorted int64) as float32."""
+        return self.rows(self.targets[positions])
+
+    def class_deficits(self):
+        """Each pool node's class index (int64 (n,)) and the picks each class still needs
+        after ``initial`` (int64 (classes,)), for the rules that meet quotas as they pick."""
+        classes, klass = np.unique(self.pool_label, return_inverse=True)
+        short = self.deficits(self.initial)
+        return klass.astype(np.int64), np.array([short.get(int(c), 0) for c in classes], dtype=np.int64)
 
     def pool_positions(self, nodes):
         """Positions in ``pool`` of pool nodes ``nodes``."""
@@ -234,6 +249,40 @@ def kcenter(problem):
     return Choice(order, covering, {**info, "greedy": outcome.stats})
 
 
+def kmedian(problem):
+    """Greedy facility location (k-median) over the targets: each pick lowers the targets'
+    summed distance to the chosen set the most (see :mod:`bigprune.selection.kmedian`)."""
+    targets, width = len(problem.targets), problem.pool_rows.shape[1]
+    nearest = plan_neighbours(len(problem.pool), targets, problem.k, problem.rule_bytes)
+    chunk = rows_per_chunk((problem.rule_bytes - PAIR_BYTES * targets * nearest) // 2,
+                           12 * nearest + 4 * width, at_least=256)
+    lists = neighbour_lists(problem.pool_rows, problem.read_targets, targets, nearest, chunk)
+    start = problem.pool_positions(problem.initial)
+    klass, deficit = problem.class_deficits()
+    order, facts = facility_greedy(lists, start, np.setdiff1d(np.arange(len(problem.pool)), start),
+                                   klass, deficit, problem.k - len(start))
+    return Choice(problem.pool[order], None, {"kmedian": facts})
+
+
+def kmeans(problem):
+    """k-means over the targets (one cluster per free pick), then each cluster's nearest pool
+    node, larger clusters first (see :mod:`bigprune.selection.kmeans`)."""
+    targets, width = len(problem.targets), problem.pool_rows.shape[1]
+    picks = problem.k - len(problem.initial)
+    if picks == 0:
+        return Choice(problem.initial.copy(), None, {"kmeans": {"clusters": 0}})
+    count = min(picks, targets)
+    chunk = rows_per_chunk(problem.rule_bytes // 4, 4 * width + 8, at_least=256)
+    centroids, sizes = clusters(problem.read_targets, targets, count, width, problem.seed,
+                                sample_rows=max(1, problem.rule_bytes // (4 * 4 * width)),
+                                chunk_rows=chunk)
+    klass, deficit = problem.class_deficits()
+    order = serve(problem.pool_rows, centroids, sizes, problem.pool_positions(problem.initial),
+                  klass, deficit, picks)
+    return Choice(problem.pool[order], None, {"kmeans": {
+        "clusters": int(count), "largest": int(sizes.max()), "empty": int(np.sum(sizes == 0))}})
+
+
 def kcenter_pool(problem):
     """Farthest-first over the pool itself, from a seeded random pool node (2-approximation)."""
     start = problem.pool_positions(problem.initial)
@@ -301,6 +350,8 @@ def age(problem):
 
 
 STRATEGIES = {
+    "kmedian": kmedian,
+    "kmeans": kmeans,
     "kcenter": kcenter,
     "kcenter-pool": kcenter_pool,
     "random": random,
@@ -312,6 +363,6 @@ STRATEGIES = {
     "age": age,
 }
 # Rules that hold the pool's feature rows (with an index, a sorted copy or the proxy's buffers).
-NEEDS_POOL_ROWS = {"kcenter", "kcenter-pool", "entropy", "el2n", "age"}
+NEEDS_POOL_ROWS = {"kmedian", "kmeans", "kcenter", "kcenter-pool", "entropy", "el2n", "age"}
 # Rules that train the proxy model on the pool.
 NEEDS_PROXY = {"entropy", "el2n", "age"}
