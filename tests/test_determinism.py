@@ -3,7 +3,7 @@ from pathlib import Path
 
 from bigprune.cli import main
 
-STRATEGIES = ("kcenter", "kcenter-pool", "random", "degree", "pagerank")
+STRATEGIES = ("kmedian", "kmeans", "kcenter", "kcenter-pool", "random", "degree", "pagerank")
 
 
 def _stage_files(store):
