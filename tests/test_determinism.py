@@ -2,8 +2,7 @@
 from pathlib import Path
 
 from bigprune.cli import main
-
-STRATEGIES = ("kmedian", "kmeans", "kcenter", "kcenter-pool", "random", "degree", "pagerank")
+from bigprune.scenario.demo import DEMO_STRATEGIES
 
 
 def _stage_files(store):
@@ -20,6 +19,6 @@ def test_thread_count_does_not_change_any_output(tmp_path):
         runs.append(workdir)
     one, two = runs
     assert _stage_files(one / "store") == _stage_files(two / "store")
-    for strategy in STRATEGIES:
+    for strategy in DEMO_STRATEGIES:
         assert (one / "selections" / f"{strategy}.parquet").read_bytes() == \
             (two / "selections" / f"{strategy}.parquet").read_bytes()

@@ -15,12 +15,13 @@ from .scenario import generate
 
 DEMO_NODES = 100_000
 DEMO_BUDGET = 0.02
-DEMO_STRATEGIES = ("kcenter", "kcenter-pool", "random", "degree", "pagerank")
+# kmedian first: the rule that beat random at every budget on a real citation graph (README).
+DEMO_STRATEGIES = ("kmedian", "kmeans", "kcenter", "random", "degree", "pagerank")
 # The small study the demo runs: how many training nodes each rule needs to come within one
 # accuracy point of the full pool, scored on this week's answers. The rungs reach 0.2 because on
-# 100k listings neither rule comes within the point below 0.05; two repeats keep the demo near a
-# minute (the k-supplier greedy ignores the seed and runs once per budget).
-DEMO_STUDY = {"strategies": ("kcenter", "random"), "budgets": (0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 1),
+# 100k listings no rule comes within the point below 0.05; two repeats keep the demo near a
+# minute (kmedian and the k-supplier greedy ignore the seed and run once per budget).
+DEMO_STUDY = {"strategies": ("kmedian", "kcenter", "random"), "budgets": (0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 1),
               "repeats": 2, "tolerance": 0.01}
 STAMP = "demo-params.json"
 
@@ -71,7 +72,7 @@ def demo(workdir, nodes=None, seed=0, memory_budget=DEFAULT_BUDGET, threads=None
     ran = sum(step["run"] for step in steps)
     echo(f"done in {time.time() - started:.0f} s ({ran} of {len(steps)} steps ran), "
          f"peak memory {format_size(peak_rss())}")
-    echo(f"caution: {reports['kcenter']['caution']}")
+    echo(f"caution: {reports[DEMO_STRATEGIES[0]]['caution']}")
     return reports
 
 
