@@ -38,10 +38,19 @@ exit status: 0 done, 2 bad input or job file, 3 memory budget too small or disk 
   bigprune study --store store/ --out study/ --budgets 0.01,0.05,0.2,1 --repeats 5 \\
                  --answers answers.parquet --tolerance 0.005
 
+  bigprune study --store store/ --out study/ --l2 1             # one fixed penalty for every cell
+
+Each cell's L2 penalty is chosen on the valid split (100 .. 0.001) unless --l2 fixes it; when the
+study also scores on the valid split (no --answers), that choice makes its accuracies optimistic.
 A rerun with the same options skips the cells already in study/cells/.""",
     "train": """examples:
   bigprune train --store store/                                 # the whole pool
-  bigprune train --store store/ --nodes-from picks.parquet --answers answers.parquet""",
+  bigprune train --store store/ --nodes-from picks.parquet --answers answers.parquet
+  bigprune train --store store/ --l2 0.1 --hop 1                # fixed penalty, features after 1 hop
+
+By default the L2 penalty is chosen on the valid split from 100, 10, 1, 0.1, 0.01, 0.001 (the
+output's "l2" shows the choice and each value's valid accuracy; the valid score is then
+optimistic, the --answers score is not); with no valid nodes it is 1 (scikit-learn's C = 1).""",
     "select": """examples:
   bigprune select --store store/ --strategy kcenter --budget 0.05 --out picks.parquet
   bigprune select --store store/ --strategy random --budget 5000 --seed 1 --out random.parquet
@@ -130,8 +139,14 @@ def _parser():
                    help="train on these nodes (a selection's node_id column); default: the whole pool")
     p.add_argument("--answers", default=None, metavar="FILE.parquet",
                    help="node_id, label of target nodes to score on as well as the valid split")
-    p.add_argument("--l2", type=float, default=1.0, help="L2 penalty (scikit-learn's 1/C; default 1)")
+    p.add_argument("--l2", type=float, default=None, metavar="L2",
+                   help="fix the L2 penalty (scikit-learn's 1/C); default: chosen on the valid "
+                        "split from 100 .. 0.001, or 1 when there is no valid node")
     p.add_argument("--hop", type=int, default=None, metavar="K", help="features after K hops (default: last)")
+    p.add_argument("--standardize", action="store_true",
+                   help="scale each feature by the training nodes' mean and standard deviation "
+                        "first (default off: it inflates rare features of sparse inputs such as "
+                        "bags of words)")
 
     p = sub.add_parser("study", parents=[common], formatter_class=fmt, epilog=EXAMPLES["study"],
                        help="train the proxy on each rule's subsets at several budgets; recommend one")
@@ -146,6 +161,11 @@ def _parser():
     p.add_argument("--tolerance", type=float, default=0.01, metavar="T",
                    help="accuracy below the full pool that still counts as enough (default 0.01)")
     p.add_argument("--targets", default="test", metavar="SPLIT", help="nodes the rules cover (default test)")
+    p.add_argument("--l2", type=float, default=None, metavar="L2",
+                   help="fix the proxy's L2 penalty (scikit-learn's 1/C) in every cell; default: "
+                        "chosen per cell on the valid split from 100 .. 0.001")
+    p.add_argument("--standardize", action="store_true",
+                   help="standardise each feature on the cell's training nodes first (default off)")
 
     p = sub.add_parser("run", parents=[common], formatter_class=fmt, epilog=EXAMPLES["run"],
                        help="run a job file: ingest, propagate, select, skipping what is current")
@@ -191,13 +211,14 @@ def _run(args):
     if args.command == "train":
         from .learning.train import train
 
-        return train(args.store, nodes_from=args.nodes_from, answers=args.answers, l2=args.l2, hop=args.hop, **opts)
+        return train(args.store, nodes_from=args.nodes_from, answers=args.answers, l2=args.l2, hop=args.hop,
+                     standardize=args.standardize, **opts)
     if args.command == "study":
         from .learning.study import study
 
         summary = study(args.store, args.out, budgets=args.budgets, strategies=args.strategies,
                         repeats=args.repeats, answers=args.answers, tolerance=args.tolerance,
-                        targets=args.targets, **opts)
+                        targets=args.targets, l2=args.l2, standardize=args.standardize, **opts)
         return {k: summary[k] for k in ("recommendation", "cells", "outputs", "seconds")}
     from .selection.select import select
 

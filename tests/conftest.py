@@ -1,9 +1,12 @@
-"""Shared fixtures: stores built straight from arrays, so stage tests need no ingest."""
+"""Shared fixtures: stores built straight from arrays, so stage tests need no ingest; and the
+real Citeseer citation graph (tests/data/citeseer/), built through ingest and propagate."""
 import hashlib
+from collections import namedtuple
 from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.parquet as pq
 import pytest
 import scipy.sparse as sp
 
@@ -65,3 +68,78 @@ def tree_digest(root):
         if path.is_file():
             h.update(path.read_bytes())
     return h.hexdigest()
+
+
+# Citeseer: 3,327 papers, 4,552 citation links, 3,703-word binary bags of words, 6 classes.
+# Source: the Planetoid data set (Yang, Cohen & Salakhutdinov, 2016, "Revisiting Semi-Supervised
+# Learning with Graph Embeddings"), from the authors' public repository, MIT licence
+# (tests/data/citeseer/LICENSE and README.md, kept with the data).
+CITESEER = Path(__file__).parent / "data" / "citeseer"
+CITESEER_WORDS = 3703
+Citeseer = namedtuple("Citeseer", ["store", "answers"])
+
+
+def citeseer_features(root=CITESEER):
+    """The bags of words, row-normalised (each paper's words sum to 1; a paper with no word stays
+    zero) as in Kipf & Welling (2017) and Wu et al. (2019): dense float32 (3327 x 3703)."""
+    nodes = pq.read_table(root / "nodes.parquet", columns=["node_id"]).column("node_id").to_numpy()
+    assert np.array_equal(nodes, np.arange(len(nodes)))  # node_id is the row
+    words = pq.read_table(root / "words.parquet")
+    bag = sp.csr_matrix((np.ones(words.num_rows, dtype=np.float32),
+                         (words.column("node_id").to_numpy(), words.column("word").to_numpy())),
+                        shape=(len(nodes), CITESEER_WORDS))
+    sums = np.asarray(bag.sum(axis=1)).ravel()
+    sums[sums == 0] = 1.0
+    return np.asarray((sp.diags(1.0 / sums) @ bag).todense(), dtype=np.float32)
+
+
+def citeseer_splits(protocol, root=CITESEER):
+    """Split per paper. "standard": the standard_split column (train 120, valid 500, test 1,000;
+    Kipf & Welling, 2017); "pool": the same valid and test, and train for every other labelled
+    paper (1,812)."""
+    nodes = pq.read_table(root / "nodes.parquet")
+    standard = nodes.column("standard_split").to_pylist()
+    labelled = [v is not None for v in nodes.column("label").to_pylist()]
+    if protocol == "standard":
+        return standard
+    if protocol == "pool":
+        return [s if s is not None else ("train" if known else None)
+                for s, known in zip(standard, labelled)]
+    raise ValueError(f"unknown Citeseer protocol {protocol!r}: use standard or pool")
+
+
+@pytest.fixture(scope="session")
+def citeseer(tmp_path_factory):
+    """``build(protocol)`` -> ``Citeseer(store, answers)``: a store built with the project's own
+    ingest and propagate (2 hops, symmetric normalisation) and a Parquet file (node_id, label) of
+    the 1,000 test papers; one build per protocol per session."""
+    from bigprune import ingest, propagate
+
+    root = tmp_path_factory.mktemp("citeseer")
+    built = {}
+
+    def build(protocol):
+        if protocol in built:
+            return built[protocol]
+        split = citeseer_splits(protocol)
+        if not (root / "features.npy").exists():
+            np.save(root / "features.npy", citeseer_features())
+        nodes = pq.read_table(CITESEER / "nodes.parquet")
+        table = pa.table({"node_id": nodes.column("node_id").cast(pa.int64()),
+                          "split": pa.array(split, pa.string()),
+                          "label": nodes.column("label").cast(pa.int64())})
+        pq.write_table(table, root / f"nodes_{protocol}.parquet")
+        store = root / f"store_{protocol}"
+        ingest(CITESEER / "edges.parquet", root / f"nodes_{protocol}.parquet", store,
+               features=root / "features.npy", threads=1)
+        propagate(store, hops=2, norm="sym", threads=1)
+        answers = root / "answers.parquet"
+        if not answers.exists():
+            test = np.array([s == "test" for s in split])
+            pq.write_table(pa.table({"node_id": nodes.column("node_id").to_numpy()[test].astype(np.int64),
+                                     "label": nodes.column("label").to_numpy(zero_copy_only=False)[test]
+                                     .astype(np.int64)}), answers)
+        built[protocol] = Citeseer(store, answers)
+        return built[protocol]
+
+    return build

@@ -3,7 +3,9 @@
 For every rule, budget and repeat (a *cell*) the rule picks a subset of the training pool, the
 proxy (:mod:`bigprune.learning.proxy`) is trained on it in the selection embedding (the last propagated
 hop), and it is scored on held-out labelled nodes: the targets' answers when a file of them is
-given, else the ``valid`` split. Budget 1 is the full pool, the reference accuracy.
+given, else the ``valid`` split. Budget 1 is the full pool, the reference accuracy. The proxy's
+L2 penalty is chosen per cell on the ``valid`` split (:func:`bigprune.learning.proxy.fit_tuned`)
+unless one is given.
 
 Each finished cell is written atomically to ``OUT/cells/<cell>.json`` with a key over everything
 that decides its result, so a rerun skips cells whose key matches and a killed study resumes.
@@ -27,6 +29,7 @@ from ..common.fingerprint import key
 from ..common.memory import DEFAULT_BUDGET, FIXED_OVERHEAD, chunk_ranges, format_size, parse_size, \
     rows_per_chunk
 from .powerlaw import fit_power_law, smallest_sufficient
+from .proxy import DEFAULT_L2, L2_GRID
 from ..common.runtime import progress, set_threads
 from ..common.schema import NO_LABEL, SPLIT_CODES
 from ..common.store import Store
@@ -34,7 +37,6 @@ from ..common.store import Store
 DEFAULT_BUDGETS = (0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1.0)
 DEFAULT_REPEATS = 3
 DEFAULT_TOLERANCE = 0.01
-DEFAULT_L2 = 1.0
 BOOTSTRAP = 1000
 FULL = "full-pool"  # the reference cell: every rule's subset at budget 1
 # Rules whose picks do not depend on the seed (the k-supplier greedy breaks ties by index and its
@@ -46,7 +48,7 @@ ONE_THREAD = {name: "1" for name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", 
 
 
 def study(store, out, budgets=DEFAULT_BUDGETS, strategies=None, repeats=DEFAULT_REPEATS,
-          answers=None, tolerance=DEFAULT_TOLERANCE, targets="test", l2=DEFAULT_L2,
+          answers=None, tolerance=DEFAULT_TOLERANCE, targets="test", l2=None, standardize=False,
           memory_budget=DEFAULT_BUDGET, threads=None):
     """Run (or resume) the study and write its outputs under ``out``.
 
@@ -61,7 +63,10 @@ def study(store, out, budgets=DEFAULT_BUDGETS, strategies=None, repeats=DEFAULT_
     answers : Parquet file (node_id, label) of held-out nodes, or None for the ``valid`` split.
     tolerance : accuracy (0.01 = one point) below the full pool that still counts as enough.
     targets : the nodes the rules cover, as in ``select``.
-    l2 : the proxy's L2 penalty (see :func:`bigprune.learning.proxy.fit_proxy`).
+    l2 : the proxy's L2 penalty (see :func:`bigprune.learning.proxy.fit_proxy`) in every cell, or
+        None to choose it per cell by accuracy on the ``valid`` split over
+        :data:`~bigprune.learning.proxy.L2_GRID` (the default; ``DEFAULT_L2`` without valid nodes).
+    standardize : standardise the features on each cell's training nodes first (default off).
 
     Returns
     -------
@@ -75,7 +80,8 @@ def study(store, out, budgets=DEFAULT_BUDGETS, strategies=None, repeats=DEFAULT_
     given = parse_budgets(budgets)
     repeats = _check_repeats(repeats)
     tolerance = _check_number(tolerance, "--tolerance", 0.0, 1.0, "a number from 0 to below 1, e.g. 0.01")
-    l2 = _check_number(l2, "--l2", 0.0, math.inf, "a number >= 0")
+    if l2 is not None:
+        l2 = _check_number(l2, "--l2", 0.0, math.inf, "a number >= 0")
     out = _check_out(out, store)
     from ..selection.select import TARGETS
 
@@ -83,7 +89,7 @@ def study(store, out, budgets=DEFAULT_BUDGETS, strategies=None, repeats=DEFAULT_
         raise InputError(f"--targets {targets}: unknown; use one of {', '.join(TARGETS)}")
     memory = parse_size(memory_budget)
     threads = set_threads(threads)
-    setup = _setup(store, answers, given, rules, repeats, targets, l2)
+    setup = _setup(store, answers, given, rules, repeats, targets, l2, bool(standardize))
     summary = _study(setup, out, tolerance, memory, threads)
     summary["seconds"] = round(time.perf_counter() - started, 3)
     return summary
@@ -186,17 +192,17 @@ def _check_out(out, store):
     return resolved
 
 
-def _setup(store, answers, budgets, rules, repeats, targets, l2):
-    """Everything the cells share: pool, evaluation set, cell plans and their keys."""
+def _setup(store, answers, budgets, rules, repeats, targets, l2, standardize):
+    """Everything the cells share: pool, evaluation set, tuning set, cell plans and their keys."""
     split = store.load("graph", "split", mmap=False)
     label = store.load("graph", "label", mmap=False)
     pool = np.flatnonzero((split == SPLIT_CODES["train"]) & (label != NO_LABEL)).astype(np.int64)
     if len(pool) == 0:
         raise InputError(f"--store {store.path}: no labelled node has split train, so the training "
                          f"pool is empty; mark training nodes in the node table's split column")
+    valid = np.flatnonzero((split == SPLIT_CODES["valid"]) & (label != NO_LABEL)).astype(np.int64)
     if answers is None:
-        rows = np.flatnonzero((split == SPLIT_CODES["valid"]) & (label != NO_LABEL)).astype(np.int64)
-        truth = label[rows]
+        rows, truth = valid, label[valid]
         if len(rows) == 0:
             raise InputError(f"--store {store.path}: no labelled valid node to evaluate on; give "
                              f"--answers FILE.parquet (node_id, label) of held-out nodes")
@@ -204,12 +210,18 @@ def _setup(store, answers, budgets, rules, repeats, targets, l2):
     else:
         rows, truth = _answers(store, answers, pool)
         evaluation = {"source": str(answers), "nodes": int(len(rows))}
+    # the rows the penalty is chosen on: the valid split, unless l2 is given
+    tune_rows = valid if l2 is None else valid[:0]
+    tune_truth = label[tune_rows]
+    policy = _l2_policy(l2, tune_rows, answers, rows)
     hops = int(store.entry("propagate")["params"]["hops"])
     embedding = store.stage_dir("propagate") / f"hop_{hops}.npy"
     width = int(np.load(embedding, mmap_mode="r").shape[1])
     sizes = _sizes(budgets, len(pool))
     base = {"graph": store.entry("graph")["dir"], "propagate": store.entry("propagate")["dir"],
-            "targets": targets, "hop": hops, "l2": l2,
+            "targets": targets, "hop": hops, "standardize": standardize,
+            "l2": l2 if l2 is not None else {"grid": [float(g) for g in L2_GRID],
+                                              "tuned_on": _digest(tune_rows, tune_truth)},
             "evaluation": _digest(rows, truth)}
     cells = [{"rule": FULL, "budget": 1.0, "k": len(pool), "repeat": 0, "seed": 0}]
     for rule in rules:
@@ -221,8 +233,29 @@ def _setup(store, answers, budgets, rules, repeats, targets, l2):
         cell["name"] = _cell_name(cell)
     return {"store": store, "pool": pool, "eval_rows": rows, "eval_truth": truth, "width": width,
             "embedding": str(embedding), "cells": cells, "rules": rules, "repeats": repeats,
-            "targets": targets, "l2": l2, "evaluation": evaluation, "hop": hops,
+            "targets": targets, "l2": l2, "l2_policy": policy, "standardize": standardize,
+            "tune_rows": tune_rows, "tune_truth": tune_truth, "evaluation": evaluation, "hop": hops,
             "budgets": [b for b, _ in sizes] + [1.0]}
+
+
+def _l2_policy(l2, tune_rows, answers, eval_rows):
+    """One sentence: how the cells' L2 penalty is set, and what that means for the scores."""
+    if l2 is not None:
+        return f"l2 = {l2:g} in every cell (given)."
+    if len(tune_rows) == 0:
+        return (f"l2 = {DEFAULT_L2:g} in every cell (scikit-learn's default C = 1): the store has no "
+                f"labelled valid node to choose it on.")
+    grid = ", ".join(f"{g:g}" for g in L2_GRID)
+    chosen = (f"l2 chosen per cell by accuracy on the valid split ({len(tune_rows):,} nodes) "
+              f"from {grid}")
+    if answers is None:
+        return (f"{chosen}; the study scores on those same valid nodes, so its accuracies are "
+                f"optimistic (give --answers, or --l2, for held-out scores).")
+    shared = int(np.isin(eval_rows, tune_rows).sum())
+    if shared:
+        return (f"{chosen}; {shared:,} of the answers' nodes are valid nodes, so their scores are "
+                f"optimistic.")
+    return f"{chosen}; the answers are scored apart from that choice."
 
 
 def _sizes(budgets, pool):
@@ -279,6 +312,8 @@ def _study(setup, out, tolerance, memory, threads):
     context = {"store": str(setup["store"].path), "embedding": setup["embedding"],
                "pool": setup["pool"], "eval_rows": setup["eval_rows"],
                "eval_truth": setup["eval_truth"], "width": setup["width"], "targets": setup["targets"], "l2": setup["l2"],
+               "standardize": setup["standardize"], "tune_rows": setup["tune_rows"],
+               "tune_truth": setup["tune_truth"],
                "memory": per_worker, "threads": 1 if workers > 1 else threads}
     with progress(total=len(todo), desc="study", unit="cell") as bar:
         for cell, result in _run_all(todo, context, workers):
@@ -293,7 +328,9 @@ def _study(setup, out, tolerance, memory, threads):
                          "workers": workers, "memory_per_worker": per_worker},
                "settings": {"rules": setup["rules"], "budgets": setup["budgets"],
                             "repeats": setup["repeats"], "targets": setup["targets"],
-                            "l2": setup["l2"], "embedding": f"hop_{setup['hop']}",
+                            "l2": setup["l2"], "l2_policy": setup["l2_policy"],
+                            "l2_grid": None if setup["l2"] is not None else list(L2_GRID),
+                            "standardize": setup["standardize"], "embedding": f"hop_{setup['hop']}",
                             "evaluation": setup["evaluation"], "pool": int(len(setup["pool"]))},
                "diagnostics": _diagnostics(setup, done)}
     summary["outputs"] = write_outputs(out, rows, summary)
@@ -316,7 +353,8 @@ def _plan_workers(setup, cells, memory, threads):
     classes = len(np.unique(setup["eval_truth"])) + 1
     largest = max(c["k"] for c in setup["cells"])
     need = (2 * targets * rows + 48 * targets + 2 * pool * rows + 48 * pool + 32 * pool * classes
-            + 40 * len(split) + rows * (largest + len(setup["eval_rows"])) + 16 * rows * 65536)
+            + 40 * len(split) + rows * (largest + len(setup["eval_rows"]) + len(setup["tune_rows"]))
+            + 16 * rows * 65536)
     per_worker = FIXED_OVERHEAD + need
     if memory < per_worker:
         raise BudgetError(f"--memory-budget {format_size(memory)} is too small for study: one "
@@ -363,18 +401,21 @@ _WORKER = {}
 
 
 def _init_worker(context):
-    """Per process: thread counts, and the evaluation rows read once."""
+    """Per process: thread counts, and the evaluation and tuning rows read once."""
     set_threads(context["threads"])
     window = rows_per_chunk(max(1, context["memory"] - FIXED_OVERHEAD) // 8, 4 * context["width"],
                             at_least=1024)
     _WORKER.clear()
     _WORKER.update(context, window=window,
                    eval_x=_gather(context["embedding"], context["eval_rows"], window))
+    same = np.array_equal(context["tune_rows"], context["eval_rows"])
+    _WORKER["tune_x"] = (_WORKER["eval_x"] if same
+                         else _gather(context["embedding"], context["tune_rows"], window))
 
 
 def _run_cell(cell):
     """Select, train the proxy on the subset, score it on the evaluation rows."""
-    from .proxy import fit_proxy, scores
+    from .proxy import fit_tuned, scores
     from ..selection.select import select
 
     started = time.perf_counter()
@@ -398,12 +439,15 @@ def _run_cell(cell):
     classes = len(np.unique(ctx["eval_truth"])) + len(np.unique(label))
     chunk = rows_per_chunk(max(1, ctx["memory"] - FIXED_OVERHEAD) // 8, 8 * (ctx["width"] + 3 * classes),
                            at_least=1024)
-    model = fit_proxy(x, label, np.arange(len(rows)), l2=ctx["l2"], chunk_rows=chunk)
+    tuning = (ctx["tune_x"], ctx["tune_truth"], np.arange(len(ctx["tune_rows"])))
+    model, choice = fit_tuned(x, label, np.arange(len(rows)), valid=tuning, l2=ctx["l2"],
+                              standardize=ctx["standardize"], chunk_rows=chunk)
     del x
     guess = model.predict(ctx["eval_x"], np.arange(len(ctx["eval_rows"])), chunk_rows=chunk)
     result.update(scores(ctx["eval_truth"], guess))
     result["training_nodes"] = int(len(rows))
     result["iterations"] = model.iterations
+    result["l2"] = choice
     result["seconds"] = round(time.perf_counter() - started, 3)
     return result
 
@@ -464,7 +508,7 @@ def _row(rule, budget, repeat, result):
     return {"rule": rule, "budget": float(budget), "training_nodes": result["training_nodes"],
             "repeat": repeat, "accuracy": result["accuracy"], "error": 1.0 - result["accuracy"],
             "macro_f1": result["macro_f1"], "per_class": result["per_class"],
-            "seconds": result["seconds"],
+            "seconds": result["seconds"], "l2": result.get("l2", {}).get("l2", math.nan),
             "coverage_radius": result.get("coverage", {}).get("radius", math.nan),
             "mean_degree": result.get("diagnostics", {}).get("selected", {}).get("degree", math.nan),
             # kcenter picks made by its farthest-first fill once every target was served

@@ -51,6 +51,7 @@ def _columns(rows, classes):
         table[f"acc_class_{c}"] = [r["per_class"].get(str(c), math.nan) for r in rows]
     for name in ("seconds", "coverage_radius", "mean_degree", "fill_picks"):
         table[name] = [r[name] for r in rows]
+    table["l2"] = [r.get("l2", math.nan) for r in rows]  # the penalty the cell's proxy used
     return table
 
 
@@ -153,12 +154,29 @@ def _png(fig):
 
 
 # ---- the report as blocks --------------------------------------------------------------------
+def _l2_text(settings, rows):
+    """The penalty policy, and which values the cells chose when it was tuned."""
+    policy = settings.get("l2_policy")
+    if policy is None:  # a summary written before the penalty was tuned
+        return f"l2 = {settings['l2']:g}."
+    if settings.get("l2") is not None:
+        return policy
+    chosen = [r["l2"] for r in rows if isinstance(r.get("l2"), float) and not math.isnan(r["l2"])]
+    if not chosen:
+        return policy
+    values, counts = np.unique(chosen, return_counts=True)
+    spread = ", ".join(f"{v:g} ({c})" for v, c in sorted(zip(values, counts), key=lambda t: -t[0]))
+    return f"{policy} Chosen (rows of the table): {spread}."
+
+
 def report_blocks(rows, summary, classes, images):
     """``[(kind, ...)]`` with kinds h1, h2, p, table (header, rows), img (name, png)."""
     rec, fits, settings = summary["recommendation"], summary["fits"], summary["settings"]
     ev = settings["evaluation"]
     blocks = [("h1", "bigprune study: how many training nodes are enough"),
-              ("p", f"Proxy: L2 softmax regression (l2 = {settings['l2']:g}) on {settings['embedding']}. "
+              ("p", f"Proxy: L2 softmax regression on {settings['embedding']}"
+                    f"{', features standardised' if settings.get('standardize') else ''}; "
+                    f"{_l2_text(settings, rows)} "
                     f"Training pool: {settings['pool']:,} nodes. Rules cover the {settings['targets']} "
                     f"nodes. Scored on {ev['nodes']:,} held-out nodes ({ev['source']}). "
                     f"Repeats: {settings['repeats']} (seed = repeat; rules that ignore the seed run "

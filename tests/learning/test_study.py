@@ -19,6 +19,7 @@ from bigprune.common.errors import InputError
 from bigprune.propagation.propagate import propagate
 from bigprune.common.runtime import set_threads
 from bigprune.common.schema import NO_LABEL
+from bigprune.learning.proxy import L2_GRID
 from bigprune.selection.select import select
 from bigprune.selection.strategies import STRATEGIES
 from conftest import random_symmetric, write_graph_store
@@ -94,21 +95,59 @@ def test_table_has_every_cell(done):
 
 
 def test_a_cell_matches_sklearn(store, done):
-    # reference: sklearn LogisticRegression (C = 1 / l2) on the same standardized rows, and
+    # reference: sklearn LogisticRegression (C = 1 / l2) on the same rows, unstandardised, for
+    # every l2 of the grid, the best on the valid split kept (ties to the stronger penalty); and
     # sklearn.metrics.recall_score for the per-class accuracy
     t = table(done[0])
     row = next(i for i in range(len(t["rule"])) if (t["rule"][i], t["budget"][i], t["repeat"][i]) == ("random", 0.3, 2))
     picked = np.sort(select(store, "random", 180, seed=2, threads=1)["indices"])
     x = np.asarray(store.load("propagate", "hop_2"), dtype=np.float64)
     label, split = store.load("graph", "label"), store.load("graph", "split")
-    mean, std = x[picked].mean(0), x[picked].std(0)
-    model = LogisticRegression(C=1.0, max_iter=5000, tol=1e-10).fit((x[picked] - mean) / std, label[picked])
     valid = np.flatnonzero(split == 2)
-    guess = model.predict((x[valid] - mean) / std)
+    fits = {l2: LogisticRegression(C=1.0 / l2, max_iter=5000, tol=1e-10).fit(x[picked], label[picked])
+            for l2 in L2_GRID}
+    best = max(L2_GRID, key=lambda l2: (fits[l2].score(x[valid], label[valid]), l2))
+    guess = fits[best].predict(x[valid])
     assert t["training_nodes"][row] == 180
     assert abs(t["accuracy"][row] - np.mean(guess == label[valid])) <= 2 / len(valid)
     recall = recall_score(label[valid], guess, average=None)
     assert np.allclose([t[f"acc_class_{c}"][row] for c in range(3)], recall, atol=0.03)
+    assert t["l2"][row] in L2_GRID
+
+
+def test_l2_policy_is_recorded(store, done, tmp_path):
+    out, summary = done
+    settings = summary["settings"]
+    # scored on the valid split it was tuned on: the report says so plainly
+    assert settings["l2"] is None and settings["l2_grid"] == list(L2_GRID)
+    assert "optimistic" in settings["l2_policy"] and "valid split (400 nodes)" in settings["l2_policy"]
+    assert settings["l2_policy"] in (out / "report.md").read_text()
+    cell = json.loads((out / "cells" / "random-b0.3-r2.json").read_text())
+    assert cell["result"]["l2"]["chosen_by"] == "valid accuracy"
+    assert len(cell["result"]["l2"]["valid_accuracy"]) == len(L2_GRID)
+    # with answers apart from the valid split, the choice does not touch the scores
+    answers = store.path.parent / "answers.parquet"
+    held = study(store, tmp_path / "a", budgets=[1], strategies=["degree"], repeats=1,
+                 answers=answers, threads=1)["settings"]
+    assert "answers are scored apart" in held["l2_policy"] and "optimistic" not in held["l2_policy"]
+    given = study(store, tmp_path / "g", budgets=[1], strategies=["degree"], repeats=1, l2=2.0,
+                  threads=1)
+    assert given["settings"]["l2"] == 2.0 and given["settings"]["l2_policy"] == "l2 = 2 in every cell (given)."
+    report = (tmp_path / "g" / "report.md").read_text()
+    assert "l2 = 2 in every cell (given)." in report
+
+
+def test_study_cli_takes_l2_and_standardize(store, tmp_path, capsys):
+    code = main(["study", "--quiet", "--store", str(store.path), "--out", str(tmp_path / "s"),
+                 "--budgets", "1", "--strategies", "degree", "--repeats", "1", "--threads", "1",
+                 "--l2", "0.5", "--standardize"])
+    assert code == 0
+    summary = json.loads((tmp_path / "s" / "study.json").read_text())
+    assert summary["settings"]["l2"] == 0.5 and summary["settings"]["standardize"] is True
+    # standardize is in the cells' key: the same study without it runs its cells again
+    capsys.readouterr()
+    plain = study(store, tmp_path / "s", budgets=[1], strategies=["degree"], repeats=1, l2=0.5, threads=1)
+    assert plain["cells"]["run"] == 1 and plain["cells"]["skipped"] == 0
 
 
 def test_recommendation_matches_direct_computation(done):
@@ -161,6 +200,9 @@ def test_changed_parameters_rerun_the_cells(store, done, tmp_path):
     shutil.copytree(done[0] / "cells", tmp_path / "cells")
     changed = study(store, tmp_path, budgets=[0.05, 1], strategies=["random"], repeats=1, l2=3.0, threads=1)
     assert changed["cells"] == {**changed["cells"], "run": 2, "skipped": 0}  # l2 is in every key
+    # and back: cells of a given l2 do not stand for the tuned default's
+    tuned = study(store, tmp_path, budgets=[0.05, 1], strategies=["random"], repeats=1, threads=1)
+    assert tuned["cells"]["run"] == 2
 
 
 def test_parallel_workers_give_the_serial_results(store, done, tmp_path):
