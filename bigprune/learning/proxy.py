@@ -22,6 +22,10 @@ from ..common.memory import chunk_ranges
 L2_GRID = (100.0, 10.0, 1.0, 0.1, 0.01, 0.001)
 # The penalty when there is nothing to choose on: scikit-learn's LogisticRegression default C = 1.
 DEFAULT_L2 = 1.0
+# L-BFGS-B's relative-decrease stop. Its default (2.2e-9) stops early on features that are not
+# standardised: entropies on raw iris were 4e-4 off scikit-learn's converged model, 1.5e-6 at
+# 1e-12 (96 -> 135 iterations).
+FTOL = 1e-12
 
 
 @dataclass
@@ -115,7 +119,7 @@ def fit_proxy(features, labels, rows, l2=DEFAULT_L2, max_iter=300, chunk_rows=65
                              f"{dim * k + k} values, got {start.size}")
         with _one_blas_thread():
             result = minimize(loss_grad, start, jac=True, method="L-BFGS-B",
-                              options={"maxiter": max_iter, "gtol": tol})
+                              options={"maxiter": max_iter, "gtol": tol, "ftol": FTOL})
         coef, intercept = result.x[:dim * k].reshape(dim, k), result.x[dim * k:]
         iterations = int(result.nit)
     return ProxyModel(coef, intercept, classes, mean, scale, iterations)

@@ -50,17 +50,19 @@ def entropy_scores(rows, labels, l2=1.0, chunk_rows=65536):
 def el2n_scores(rows, labels, runs=EL2N_RUNS, iterations=EL2N_ITERATIONS, seed=0, l2=1.0,
                 chunk_rows=65536):
     """Mean EL2N error over ``runs`` proxies, each fitted on the whole pool for ``iterations``
-    L-BFGS steps from its own random start (weights ~ N(0, 1/d), intercepts 0, on the
-    standardized features), so that early logits are of order one as in a fresh network."""
+    L-BFGS steps from its own random start (weights ~ N(0, 1 / (d * mean(x^2))), intercepts 0),
+    so that early logits are of order one as in a fresh network, whatever the features' scale."""
     everyone = np.arange(len(rows))
     classes = np.unique(labels)
     width = rows.shape[1]
     total = np.zeros(len(rows))
     steps = []
+    square = float(np.einsum("ij,ij->", rows, rows, dtype=np.float64)) / rows.size
+    spread = 1.0 / math.sqrt(width * square) if square > 0 else 1.0 / math.sqrt(width)
     with progress(total=runs, desc="el2n", unit="run") as bar:
         for run in range(runs):
             rng = np.random.default_rng([seed, run])
-            init = (rng.normal(scale=1.0 / math.sqrt(width), size=(width, len(classes))),
+            init = (rng.normal(scale=spread, size=(width, len(classes))),
                     np.zeros(len(classes)))
             model = fit_proxy(rows, labels, everyone, l2=l2, max_iter=iterations,
                               chunk_rows=chunk_rows, init=init)
@@ -69,7 +71,7 @@ def el2n_scores(rows, labels, runs=EL2N_RUNS, iterations=EL2N_ITERATIONS, seed=0
             steps.append(model.iterations)
             bar.update(1)
     return total / runs, {"runs": runs, "iterations": iterations, "start": "random normal, "
-                          "sd 1/sqrt(d)", "proxy_iterations": steps, "l2": l2}
+                          "sd 1/sqrt(d * mean(x^2))", "proxy_iterations": steps, "l2": l2}
 
 
 def density_scores(rows, clusters, seed=0):

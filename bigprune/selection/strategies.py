@@ -24,12 +24,17 @@ from functools import cached_property
 import numpy as np
 
 from ..common.errors import InputError
+from ..common.schema import NO_LABEL, SPLIT_CODES
+from ..learning.proxy import fit_tuned
 from .hardness import age_scores, el2n_scores, entropy_scores
 from .kcenter import RowChunks, cover, greedy
 from .kmeans import clusters, serve
 from .kmedian import PAIR_BYTES, neighbour_lists, plan_neighbours
 from .kmedian import greedy as facility_greedy
 from ..common.memory import chunk_ranges, rows_per_chunk
+
+# Valid rows the hardness rules' proxy penalty is chosen on, at most (a seeded sample above).
+VALID_ROWS = 100_000
 
 Choice = namedtuple("Choice", "order outcome info", defaults=(None, None))
 Choice.__doc__ = """order : int64 (k,), dense indices. outcome : the kcenter ``Outcome`` whose
@@ -109,6 +114,20 @@ class Problem:
     @cached_property
     def pool_label(self):
         return self.label[self.pool]
+
+    @cached_property
+    def proxy_l2(self):
+        """The hardness rules' proxy penalty, chosen as ``train`` chooses it: on the store's
+        labelled valid rows (at most ``VALID_ROWS`` of them, a seeded sample), from the grid of
+        :func:`bigprune.learning.proxy.fit_tuned`. JSON-ready ``{"l2", "chosen_by", ...}``."""
+        split = self.store.load("graph", "split", mmap=False)
+        valid = np.flatnonzero((split == SPLIT_CODES["valid"]) & (self.label != NO_LABEL))
+        if len(valid) > VALID_ROWS:
+            valid = np.sort(np.random.default_rng(self.seed).choice(valid, VALID_ROWS, replace=False))
+        _, choice = fit_tuned(self.pool_rows, self.pool_label, np.arange(len(self.pool)),
+                              valid=(self.rows(valid), self.label[valid], np.arange(len(valid))),
+                              chunk_rows=self.proxy_rows)
+        return choice
 
     def read_targets(self, positions):
         """Rows of the targets at ``positions`` (sorted int64) as float32."""
@@ -330,23 +349,24 @@ def pagerank(problem):
 
 def entropy(problem):
     """Highest predictive entropy of the proxy model trained on the pool first."""
-    score, info = entropy_scores(problem.pool_rows, problem.pool_label, chunk_rows=problem.proxy_rows)
-    return Choice(_by_score(problem, score), None, {"hardness": info})
+    score, info = entropy_scores(problem.pool_rows, problem.pool_label, l2=problem.proxy_l2["l2"],
+                                 chunk_rows=problem.proxy_rows)
+    return Choice(_by_score(problem, score), None, {"hardness": {**info, "l2": problem.proxy_l2}})
 
 
 def el2n(problem):
     """Highest EL2N score (Paul et al., 2021) first: mean early error norm over random starts."""
     score, info = el2n_scores(problem.pool_rows, problem.pool_label, seed=problem.seed,
-                              chunk_rows=problem.proxy_rows)
-    return Choice(_by_score(problem, score), None, {"hardness": info})
+                              l2=problem.proxy_l2["l2"], chunk_rows=problem.proxy_rows)
+    return Choice(_by_score(problem, score), None, {"hardness": {**info, "l2": problem.proxy_l2}})
 
 
 def age(problem):
     """Highest AGE score (Cai et al., 2017) first: entropy, density and PageRank percentiles."""
     rank = problem.store.load("propagate", "pagerank", mmap=False)
     score, info = age_scores(problem.pool_rows, problem.pool_label, rank[problem.pool], problem.k,
-                             seed=problem.seed, chunk_rows=problem.proxy_rows)
-    return Choice(_by_score(problem, score), None, {"hardness": info})
+                             seed=problem.seed, l2=problem.proxy_l2["l2"], chunk_rows=problem.proxy_rows)
+    return Choice(_by_score(problem, score), None, {"hardness": {**info, "l2": problem.proxy_l2}})
 
 
 STRATEGIES = {

@@ -13,12 +13,12 @@ from bigprune.learning.proxy import fit_proxy
 @pytest.fixture(scope="module")
 def iris():
     """scikit-learn's bundled iris (Fisher, 1936), labels shifted to show that any ints work,
-    and the converged scikit-learn model on the standardized features (C = 1 / l2 = 1)."""
+    and the converged scikit-learn model on the features as they are (C = 1 / l2 = 1: the proxy
+    does not standardise by default, as SGC does not)."""
     x, y = load_iris(return_X_y=True)
     x, y = x.astype(np.float32), y * 3 + 5
-    z = (x - x.mean(0, dtype=np.float64)) / x.std(0, dtype=np.float64)
-    model = LogisticRegression(C=1.0, max_iter=10000, tol=1e-10).fit(z, y)
-    return x, y, model.predict_proba(z), model.classes_
+    model = LogisticRegression(C=1.0, max_iter=10000, tol=1e-10).fit(x.astype(np.float64), y)
+    return x, y, model.predict_proba(x.astype(np.float64)), model.classes_
 
 
 def test_predictive_entropy_matches_scipy():
@@ -63,7 +63,7 @@ def test_el2n_scores_reach_sklearn_when_trained_to_convergence(iris):
 
 def test_el2n_early_scores_average_random_starts(iris):
     # reference: the mean over runs of the EL2N formula (numpy) on proxies fitted directly with
-    # the documented random start, N(0, 1/d) weights and zero intercepts, for 3 iterations
+    # the documented random start, N(0, 1 / (d mean(x^2))) weights and zero intercepts, 3 steps
     x, y, _, classes = iris
     scores, info = el2n_scores(x, y, runs=2, iterations=3, seed=9)
     everyone = np.arange(len(y))
@@ -71,7 +71,8 @@ def test_el2n_early_scores_average_random_starts(iris):
     each = []
     for run in range(2):
         rng = np.random.default_rng([9, run])
-        init = (rng.normal(scale=1 / 2.0, size=(4, 3)), np.zeros(3))
+        init = (rng.normal(scale=1 / np.sqrt(4 * np.mean(np.square(x, dtype=np.float64))),
+                           size=(4, 3)), np.zeros(3))
         model = fit_proxy(x, y, everyone, max_iter=3, init=init)
         each.append(np.linalg.norm(model.predict_proba(x, everyone) - onehot, axis=1))
     np.testing.assert_allclose(scores, np.mean(each, axis=0), rtol=1e-10)

@@ -322,15 +322,22 @@ def test_stratified_is_seeded(skewed):
 
 
 def test_entropy_rule_ranks_by_sklearn_entropy(skewed):
-    # reference: scipy.stats.entropy of sklearn LogisticRegression(C=1) probabilities on the
-    # standardized last hop of the pool, ranked highest first
-    pool = np.flatnonzero(skewed.load("graph", "split") == 1)
-    rows = skewed.load("propagate", "hop_1")[pool].astype(np.float64)
-    z = (rows - rows.mean(0)) / rows.std(0)
-    y = skewed.load("graph", "label")[pool]
-    p = LogisticRegression(C=1.0, max_iter=10000, tol=1e-10).fit(z, y).predict_proba(z)
-    expected = pool[np.argsort(-stats.entropy(p.T), kind="stable")][:25]
+    # reference: scipy.stats.entropy of sklearn LogisticRegression probabilities on the last hop
+    # of the pool, ranked highest first; C = 1 / l2 for the penalty the rule chose on valid rows,
+    # which must be the grid value whose sklearn model scores best there (ties: stronger penalty)
+    split, label = skewed.load("graph", "split"), skewed.load("graph", "label")
+    pool, valid = np.flatnonzero(split == 1), np.flatnonzero(split == 2)
+    hop = skewed.load("propagate", "hop_1").astype(np.float64)
     result = run(skewed, "entropy", 25)
+    chosen = result["hardness"]["l2"]
+    fits = {l2: LogisticRegression(C=1 / l2, max_iter=10000, tol=1e-10).fit(hop[pool], label[pool])
+            for l2 in (100.0, 10.0, 1.0, 0.1, 0.01, 0.001)}
+    valid_scores = {l2: fit.score(hop[valid], label[valid]) for l2, fit in fits.items()}
+    assert chosen["chosen_by"] == "valid accuracy"
+    assert valid_scores[chosen["l2"]] == max(valid_scores.values())
+    assert chosen["l2"] == max(l2 for l2, v in valid_scores.items() if v == max(valid_scores.values()))
+    p = fits[chosen["l2"]].predict_proba(hop[pool])
+    expected = pool[np.argsort(-stats.entropy(p.T), kind="stable")][:25]
     np.testing.assert_array_equal(result["indices"], expected)
     assert result["hardness"]["proxy_iterations"] > 0
 
@@ -339,8 +346,9 @@ def test_el2n_rule_ranks_by_its_scores(skewed):
     # reference: numpy stable argsort of el2n_scores run directly on the pool's last hop
     pool = np.flatnonzero(skewed.load("graph", "split") == 1)
     rows = skewed.load("propagate", "hop_1")[pool]
-    scores, _ = el2n_scores(rows, skewed.load("graph", "label")[pool], seed=3)
     result = run(skewed, "el2n", 25, seed=3)
+    scores, _ = el2n_scores(rows, skewed.load("graph", "label")[pool], seed=3,
+                            l2=result["hardness"]["l2"]["l2"])
     np.testing.assert_array_equal(result["indices"], pool[np.argsort(-scores, kind="stable")][:25])
     assert result["hardness"]["runs"] == 5
 
