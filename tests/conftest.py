@@ -108,38 +108,43 @@ def citeseer_splits(protocol, root=CITESEER):
     raise ValueError(f"unknown Citeseer protocol {protocol!r}: use standard or pool")
 
 
-@pytest.fixture(scope="session")
-def citeseer(tmp_path_factory):
-    """``build(protocol)`` -> ``Citeseer(store, answers)``: a store built with the project's own
-    ingest and propagate (2 hops, symmetric normalisation) and a Parquet file (node_id, label) of
-    the 1,000 test papers; one build per protocol per session."""
+def build_citeseer(root, protocol):
+    """``Citeseer(store, answers)`` under ``root``: a store built with the project's own ingest
+    and propagate (2 hops, symmetric normalisation) and a Parquet file (node_id, label) of the
+    1,000 test papers."""
     from bigprune import ingest, propagate
 
+    root = Path(root)
+    split = citeseer_splits(protocol)
+    if not (root / "features.npy").exists():
+        np.save(root / "features.npy", citeseer_features())
+    nodes = pq.read_table(CITESEER / "nodes.parquet")
+    table = pa.table({"node_id": nodes.column("node_id").cast(pa.int64()),
+                      "split": pa.array(split, pa.string()),
+                      "label": nodes.column("label").cast(pa.int64())})
+    pq.write_table(table, root / f"nodes_{protocol}.parquet")
+    store = root / f"store_{protocol}"
+    ingest(CITESEER / "edges.parquet", root / f"nodes_{protocol}.parquet", store,
+           features=root / "features.npy", threads=1)
+    propagate(store, hops=2, norm="sym", threads=1)
+    answers = root / "answers.parquet"
+    if not answers.exists():
+        test = np.array([s == "test" for s in split])
+        pq.write_table(pa.table({"node_id": nodes.column("node_id").to_numpy()[test].astype(np.int64),
+                                 "label": nodes.column("label").to_numpy(zero_copy_only=False)[test]
+                                 .astype(np.int64)}), answers)
+    return Citeseer(store, answers)
+
+
+@pytest.fixture(scope="session")
+def citeseer(tmp_path_factory):
+    """``build(protocol)`` -> :func:`build_citeseer`, once per protocol per session."""
     root = tmp_path_factory.mktemp("citeseer")
     built = {}
 
     def build(protocol):
-        if protocol in built:
-            return built[protocol]
-        split = citeseer_splits(protocol)
-        if not (root / "features.npy").exists():
-            np.save(root / "features.npy", citeseer_features())
-        nodes = pq.read_table(CITESEER / "nodes.parquet")
-        table = pa.table({"node_id": nodes.column("node_id").cast(pa.int64()),
-                          "split": pa.array(split, pa.string()),
-                          "label": nodes.column("label").cast(pa.int64())})
-        pq.write_table(table, root / f"nodes_{protocol}.parquet")
-        store = root / f"store_{protocol}"
-        ingest(CITESEER / "edges.parquet", root / f"nodes_{protocol}.parquet", store,
-               features=root / "features.npy", threads=1)
-        propagate(store, hops=2, norm="sym", threads=1)
-        answers = root / "answers.parquet"
-        if not answers.exists():
-            test = np.array([s == "test" for s in split])
-            pq.write_table(pa.table({"node_id": nodes.column("node_id").to_numpy()[test].astype(np.int64),
-                                     "label": nodes.column("label").to_numpy(zero_copy_only=False)[test]
-                                     .astype(np.int64)}), answers)
-        built[protocol] = Citeseer(store, answers)
+        if protocol not in built:
+            built[protocol] = build_citeseer(root, protocol)
         return built[protocol]
 
     return build

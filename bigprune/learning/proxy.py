@@ -9,11 +9,11 @@ standard split from 0.72 to 0.45 test accuracy), so it is opt-in (``standardize=
 The penalty is chosen on validation rows by :func:`fit_tuned` (SGC tunes its weight decay on
 the validation split too).
 """
-from contextlib import nullcontext
 from dataclasses import dataclass
 
 import numpy as np
 from scipy.optimize import minimize
+from threadpoolctl import threadpool_limits
 
 from ..common.errors import InputError
 from ..common.memory import chunk_ranges
@@ -203,17 +203,13 @@ def _moments(features, rows, chunks):
 
 
 def _one_blas_thread():
-    """One BLAS thread while L-BFGS runs, when threadpoolctl is installed (scikit-learn brings it).
+    """One BLAS thread while L-BFGS runs.
 
     numpy and scipy each load their own OpenBLAS; L-BFGS alternates between them (the loss's
     products, then scipy's update), and each pool's threads spin while the other's work. On two
     shared cores that made a Citeseer fit (120 x 3703 features) about 60x slower than with one
     thread. The products here are thin (d x classes), so one thread loses little.
     """
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:
-        return nullcontext()
     return threadpool_limits(1, user_api="blas")
 
 
