@@ -34,7 +34,8 @@ exit status: 0 done, 2 bad input or job file, 3 memory budget too small or disk 
     "check": """examples:
   bigprune check job.toml""",
     "study": """examples:
-  bigprune study --store store/ --out study/ --strategies kcenter,random
+  bigprune study --store store/ --out study/                   # kmedian, kmeans, kcenter, random
+  bigprune study --store store/ --out study/ --strategies kmedian,random,el2n
   bigprune study --store store/ --out study/ --budgets 0.01,0.05,0.2,1 --repeats 5 \\
                  --answers answers.parquet --tolerance 0.005
 
@@ -52,9 +53,9 @@ By default the L2 penalty is chosen on the valid split from 100, 10, 1, 0.1, 0.0
 output's "l2" shows the choice and each value's valid accuracy; the valid score is then
 optimistic, the --answers score is not); with no valid nodes it is 1 (scikit-learn's C = 1).""",
     "select": """examples:
-  bigprune select --store store/ --strategy kcenter --budget 0.05 --out picks.parquet
+  bigprune select --store store/ --strategy kmedian --budget 0.05 --out picks.parquet
   bigprune select --store store/ --strategy random --budget 5000 --seed 1 --out random.parquet
-  bigprune select --store store/ --strategy kcenter --budget 0.05 --include yesterday.parquet \\
+  bigprune select --store store/ --strategy kmedian --budget 0.05 --include yesterday.parquet \\
                   --exclude flagged.parquet --min-per-class 20 --out today.parquet
   bigprune select --store store/ --strategy kcenter --radius 0.8 --out within.parquet""",
 }
@@ -112,8 +113,9 @@ def _parser():
                        help="pick a training subset and report what it covers")
     p.add_argument("--store", required=True, metavar="DIR")
     p.add_argument("--strategy", required=True, metavar="NAME",
-                   help="kcenter, kcenter-pool, random, stratified, degree, pagerank, entropy, "
-                        "el2n or age")
+                   help="kmedian (the default to start with: the mean target distance), kmeans, "
+                        "kcenter (the largest target distance), kcenter-pool, random, stratified, "
+                        "degree, pagerank, entropy, el2n or age")
     p.add_argument("--budget", default=None, metavar="B",
                    help="a fraction of the training pool (0 < B < 1) or a count (integer >= 1); "
                         "required unless --radius")
@@ -154,7 +156,7 @@ def _parser():
     p.add_argument("--out", required=True, metavar="DIR", help="folder for the table, fits, plots and report")
     p.add_argument("--budgets", default="0.01,0.02,0.05,0.1,0.2,0.5,1", metavar="B,B,...",
                    help="fractions of the pool in (0, 1] or counts; 1 = the full pool (default %(default)s)")
-    p.add_argument("--strategies", default=None, metavar="NAME,...", help="rules to compare (default: all)")
+    p.add_argument("--strategies", default=None, metavar="NAME,...", help="rules to compare (default: kmedian,kmeans,kcenter,random)")
     p.add_argument("--repeats", type=int, default=3, metavar="R", help="seeds 0 .. R-1 (default 3)")
     p.add_argument("--answers", default=None, metavar="FILE.parquet",
                    help="held-out labels (node_id, label) to score on (default: the valid split)")

@@ -18,13 +18,13 @@ Example::
     norm = "sym"
 
     [[select]]
-    strategy = "kcenter"
+    strategy = "kmedian"
     budget = 0.02
-    out = "selections/kcenter.parquet"
+    out = "selections/kmedian.parquet"
 
     [study]                      # optional: see bigprune.learning.study
     out = "study"
-    strategies = ["kcenter", "random"]
+    strategies = ["kmedian", "random"]
 """
 import tomllib
 from pathlib import Path

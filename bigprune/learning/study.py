@@ -40,8 +40,12 @@ DEFAULT_TOLERANCE = 0.01
 BOOTSTRAP = 1000
 FULL = "full-pool"  # the reference cell: every rule's subset at budget 1
 # Rules whose picks do not depend on the seed (the k-supplier greedy breaks ties by index and its
-# searches are exact; entropy's proxy starts from zero): their first repeat stands for all.
-SEED_FREE = frozenset({"kcenter", "degree", "pagerank", "entropy"})
+# searches are exact; kmedian's index trains with a fixed seed and its greedy breaks ties by
+# index; entropy's proxy starts from zero): their first repeat stands for all.
+SEED_FREE = frozenset({"kmedian", "kcenter", "degree", "pagerank", "entropy"})
+# The rules a study compares unless told: the representative rules, the k-supplier greedy and
+# random, the baseline every rule must beat.
+DEFAULT_RULES = ("kmedian", "kmeans", "kcenter", "random")
 # Environment a worker process must start with so that BLAS and OpenMP pools hold one thread.
 ONE_THREAD = {name: "1" for name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS",
                                      "NUMBA_NUM_THREADS")}
@@ -58,7 +62,7 @@ def study(store, out, budgets=DEFAULT_BUDGETS, strategies=None, repeats=DEFAULT_
     out : path of a directory outside the store (created).
     budgets : sequence or comma-separated text of fractions in (0, 1] of the pool or whole
         counts >= 2; 1 is the full pool and is always run (it is the reference).
-    strategies : sequence or comma-separated text of rule names (default: every rule).
+    strategies : sequence or comma-separated text of rule names (default: ``DEFAULT_RULES``).
     repeats : int >= 1; repeat ``r`` selects with seed ``r``.
     answers : Parquet file (node_id, label) of held-out nodes, or None for the ``valid`` split.
     tolerance : accuracy (0.01 = one point) below the full pool that still counts as enough.
@@ -96,9 +100,9 @@ def study(store, out, budgets=DEFAULT_BUDGETS, strategies=None, repeats=DEFAULT_
 
 
 def parse_strategies(value, known):
-    """Rule names from a sequence or comma-separated text; every rule in ``known`` when None."""
+    """Rule names from a sequence or comma-separated text; :data:`DEFAULT_RULES` when None."""
     if value is None:
-        return list(known)
+        return list(DEFAULT_RULES)
     names = [s.strip() for s in value.split(",")] if isinstance(value, str) else list(value)
     if not names or any(not n for n in names):
         raise InputError(f"--strategies {value!r}: give rule names separated by commas, from "
