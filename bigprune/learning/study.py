@@ -46,6 +46,8 @@ SEED_FREE = frozenset({"kmedian", "kcenter", "degree", "pagerank", "entropy"})
 # The rules a study compares unless told: the representative rules, the k-supplier greedy and
 # random, the baseline every rule must beat.
 DEFAULT_RULES = ("kmedian", "kmeans", "kcenter", "random")
+# Rows per proxy chunk that a worker's budget must hold at least (its chunks grow with the budget).
+PROXY_CHUNK_LEAST = 1024
 # Environment a worker process must start with so that BLAS and OpenMP pools hold one thread.
 ONE_THREAD = {name: "1" for name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS",
                                      "NUMBA_NUM_THREADS")}
@@ -347,7 +349,8 @@ def _plan_workers(setup, cells, memory, threads):
     One worker's need is counted for the hungriest rule (the select stage's own check, made in
     the worker, has the exact figure): target rows twice, pool rows twice (rows plus an index
     over them), a proxy's probabilities over the pool, per-node arrays, training and evaluation
-    rows and the proxy's chunks.
+    rows and the proxy's chunks at their smallest (a worker sizes them from its own budget; at
+    65,536 rows the count asked 15 GiB for 3,703-wide features).
     """
     from ..selection.select import TARGETS
 
@@ -358,7 +361,7 @@ def _plan_workers(setup, cells, memory, threads):
     largest = max(c["k"] for c in setup["cells"])
     need = (2 * targets * rows + 48 * targets + 2 * pool * rows + 48 * pool + 32 * pool * classes
             + 40 * len(split) + rows * (largest + len(setup["eval_rows"]) + len(setup["tune_rows"]))
-            + 16 * rows * 65536)
+            + 16 * rows * min(pool, PROXY_CHUNK_LEAST))
     per_worker = FIXED_OVERHEAD + need
     if memory < per_worker:
         raise BudgetError(f"--memory-budget {format_size(memory)} is too small for study: one "
@@ -442,7 +445,7 @@ def _run_cell(cell):
     # the proxy holds a float64 copy of each chunk and three (chunk, classes) temporaries
     classes = len(np.unique(ctx["eval_truth"])) + len(np.unique(label))
     chunk = rows_per_chunk(max(1, ctx["memory"] - FIXED_OVERHEAD) // 8, 8 * (ctx["width"] + 3 * classes),
-                           at_least=1024)
+                           at_least=PROXY_CHUNK_LEAST)
     tuning = (ctx["tune_x"], ctx["tune_truth"], np.arange(len(ctx["tune_rows"])))
     model, choice = fit_tuned(x, label, np.arange(len(rows)), valid=tuning, l2=ctx["l2"],
                               standardize=ctx["standardize"], chunk_rows=chunk)
