@@ -15,8 +15,8 @@ from pathlib import Path
 import numpy as np
 
 CAUTION = ("A subset that matches the full pool's overall accuracy can still do worse on the "
-           "classes and sub-groups it holds few examples of: a small department or a quiet "
-           "neighbourhood may lose many points while the average moves by less than the "
+           "classes and sub-groups it holds few examples of: a rare class or a small community "
+           "of the graph may lose many points while the average moves by less than the "
            "tolerance. Read the per-class table below, and check the groups that matter to you, "
            "before training the production model on a pruned set.")
 CURVES, PER_CLASS = "error_curves.png", "per_class.png"
@@ -94,12 +94,10 @@ def per_class_at(rows, rule, nodes, classes):
 
 # ---- plots -------------------------------------------------------------------------------------
 def _plots(rows, summary, classes):
-    """PNG bytes by file name; empty when matplotlib is missing."""
-    try:
-        from matplotlib.backends.backend_agg import FigureCanvasAgg
-        from matplotlib.figure import Figure
-    except ImportError:
-        return {}
+    """PNG bytes by file name."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
     rec = summary["recommendation"]
     colours = {rule: f"C{i % 10}" for i, rule in enumerate(summary["fits"])}
     fig = Figure(figsize=(7, 4.8))
@@ -214,7 +212,7 @@ def report_blocks(rows, summary, classes, images):
     blocks.append(("table", ["rule", "alpha", "95% interval", "a", "R²", "points"],
                    [[rule, _num(f["alpha"]), f"{_num(f['alpha_low'])} to {_num(f['alpha_high'])}",
                      _num(f["a"]), _num(f["r2"]), str(f["points"])] for rule, f in fits.items()]))
-    blocks += _image(images, CURVES, "Error against training nodes, log-log")
+    blocks.append(("img", CURVES, images[CURVES], "Error against training nodes, log-log"))
 
     blocks.append(("h2", "Per-class accuracy at the recommended budget"))
     blocks.append(("p", CAUTION))
@@ -231,7 +229,7 @@ def report_blocks(rows, summary, classes, images):
         body.append(line)
     blocks.append(("table", header, body))
     blocks.append(("p", "\"(lower)\" marks a class more than the tolerance below the full pool."))
-    blocks += _image(images, PER_CLASS, "Per-class accuracy")
+    blocks.append(("img", PER_CLASS, images[PER_CLASS], "Per-class accuracy"))
 
     blocks.append(("h2", "What the subsets look like"))
     diag = summary["diagnostics"]
@@ -249,13 +247,6 @@ def report_blocks(rows, summary, classes, images):
     blocks.append(("table", ["rule", "budget", "nodes", "degree", "PageRank", "homophily",
                              "radius", "mean distance"], body))
     return blocks
-
-
-def _image(images, name, alt):
-    if name in images:
-        return [("img", name, images[name], alt)]
-    return [("p", f"Plot {name} skipped: matplotlib is not installed "
-                  f"(pip install 'bigprune[plot]').")]
 
 
 def _num(value):

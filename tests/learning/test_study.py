@@ -2,7 +2,6 @@
 import importlib
 import json
 import shutil
-import sys
 
 import numpy as np
 import pyarrow as pa
@@ -232,22 +231,12 @@ def test_answers_are_the_evaluation_set(store, tmp_path):
 
 
 def test_report_is_self_contained_with_plots(done):
-    pytest.importorskip("matplotlib")
     out = done[0]
     page = (out / "report.html").read_text()
     assert page.count("data:image/png;base64,") == 2 and 'src="http' not in page
     assert (out / "error_curves.png").read_bytes()[:4] == b"\x89PNG"
     text = (out / "report.md").read_text()
     assert "![" in text and "per-class" in text and "Recommendation" in text
-
-
-def test_report_without_matplotlib_says_plots_were_skipped(store, done, monkeypatch, tmp_path):
-    monkeypatch.setitem(sys.modules, "matplotlib.backends.backend_agg", None)  # import fails
-    out = tmp_path / "noplot"
-    study(store, out, budgets=[0.1, 1], strategies=["degree"], repeats=1, threads=1)
-    text = (out / "report.md").read_text()
-    assert "Plot error_curves.png skipped: matplotlib is not installed" in text
-    assert "base64" not in (out / "report.html").read_text() and not (out / "error_curves.png").exists()
 
 
 @pytest.mark.parametrize("options, message", [
