@@ -29,8 +29,8 @@ def parse_size(value, option="--memory-budget"):
             raise InputError(f"{option} {value!r} is not a size: use a K/M/G suffix, e.g. 4G")
         if match.group(2) == "":
             number = float(match.group(1))
-            raise InputError(f"{option} {match.group(1)}: give a unit, e.g. {number:g}GiB or "
-                             f"{number * 1024:g}MiB")
+            raise InputError(f"{option} {match.group(1)}: give a unit, e.g. {number:.12g}GiB or "
+                             f"{number * 1024:.12g}MiB")
         size = int(float(match.group(1)) * _UNITS[match.group(2).lower()])
     if size <= 0:
         raise InputError(f"{option} {value!r} must be positive")

@@ -485,10 +485,13 @@ def test_constraint_errors(skewed, tmp_path):
         (dict(min_per_class=3, include=inc), None),
         (dict(min_per_class="0.4"), "--min-per-class 0.4: 4 classes need 20 picks, more than the "
                                     "budget 12; use at most 3 or raise --budget"),
-        (dict(min_per_class="2.5"), "--min-per-class 2.5: use a whole count >= 1 or a fraction of "
-                                    "the budget between 0 and 1"),
-        (dict(min_per_class=0), "--min-per-class 0: use a whole count >= 1 or a fraction of the "
-                                "budget between 0 and 1"),
+        # the budget's rule, for a quota too (bigprune.common.options)
+        (dict(min_per_class="2.5"), "--min-per-class 2.5: use a fraction in (0, 1] written with a "
+                                    "decimal point or % (0.05, 1.0, 5%) or a count written as an "
+                                    "integer (1, 5000)"),
+        (dict(min_per_class=0), "--min-per-class 0: use a fraction in (0, 1] written with a "
+                                "decimal point or % (0.05, 1.0, 5%) or a count written as an "
+                                "integer (1, 5000)"),
         (dict(budget=None), "--budget: required (a fraction of the training pool or a count) "
                             "unless --radius is given with --strategy kcenter"),
         (dict(radius=1.0), "--radius 1.0: give --budget or --radius, not both; the radius mode "
