@@ -19,7 +19,7 @@ Example::
 
     [[select]]
     strategy = "kmedian"
-    budget = 0.02
+    budget = 0.02                # a float is a fraction of the pool (1.0 = all), an int a count
     out = "selections/kmedian.parquet"
 
     [study]                      # optional: see bigprune.learning.study
