@@ -7,12 +7,13 @@ self-contained HTML (plots inlined as base64 PNG) always say the same. Plots nee
 import base64
 import html
 import io
-import json
 import math
 import os
 from pathlib import Path
 
 import numpy as np
+
+from ..common.jsonout import dumps
 
 CAUTION = ("A subset that matches the full pool's overall accuracy can still do worse on the "
            "classes and sub-groups it holds few examples of: a rare class or a small community "
@@ -31,8 +32,8 @@ def write_outputs(out, rows, summary):
              "summary": out / "study.json", "markdown": out / "report.md", "html": out / "report.html"}
     _atomic(paths["table"], lambda p: _parquet(p, table))
     _atomic(paths["csv"], lambda p: _csv(p, table))
-    _atomic(paths["fits"], lambda p: p.write_text(json.dumps(summary["fits"], indent=2)))
-    _atomic(paths["summary"], lambda p: p.write_text(json.dumps(summary, indent=2, default=str)))
+    _atomic(paths["fits"], lambda p: p.write_text(dumps(summary["fits"], indent=2)))
+    _atomic(paths["summary"], lambda p: p.write_text(dumps(summary, indent=2)))
     images = _plots(rows, summary, classes)
     for name, png in images.items():
         paths[name.split(".")[0]] = out / name

@@ -21,7 +21,7 @@ DEMO_STRATEGIES = ("kmedian", "kmeans", "kcenter", "random", "degree", "pagerank
 # accuracy point of the full pool, scored on this week's answers. The rungs reach 0.2 because on
 # 100k listings no rule comes within the point below 0.05; two repeats keep the demo near a
 # minute (kmedian and the k-supplier greedy ignore the seed and run once per budget).
-DEMO_STUDY = {"strategies": ("kmedian", "kcenter", "random"), "budgets": (0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 1),
+DEMO_STUDY = {"strategies": ("kmedian", "kcenter", "random"), "budgets": (0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 1.0),
               "repeats": 2, "tolerance": 0.01}
 STAMP = "demo-params.json"
 
@@ -88,7 +88,7 @@ def _job_text(memory_budget, threads, seed):
                   f'out = "selections/{strategy}.parquet"']
     quoted = ", ".join(f'"{s}"' for s in DEMO_STUDY["strategies"])
     lines += ["", "[study]", 'out = "study"', f"strategies = [{quoted}]",
-              f"budgets = [{', '.join(f'{b:g}' for b in DEMO_STUDY['budgets'])}]",
+              f"budgets = [{', '.join(repr(b) for b in DEMO_STUDY['budgets'])}]",  # 1.0 = the pool
               f"repeats = {DEMO_STUDY['repeats']}", f"tolerance = {DEMO_STUDY['tolerance']}",
               'answers = "data/answers.parquet"']
     return "\n".join(lines) + "\n"

@@ -90,25 +90,29 @@ def test_unlabeled_targets_are_nodes_without_split(store):
     assert run(store, "random", 5, targets="valid")["targets"] == 30
 
 
+# The rule (bigprune.common.options): a decimal point or % makes a fraction of the pool, an
+# integer a count; Python floats are fractions and ints counts.
 @pytest.mark.parametrize("budget,k", [(0.1, 12), ("0.25", 30), (5, 5), ("7", 7), (120, 120),
-                                      (1, 1), (0.001, 1)])
+                                      (1, 1), ("1", 1), (1.0, 120), ("1.0", 120), ("5%", 6),
+                                      (".5", 60), (0.001, 1), (np.int64(3), 3)])
 def test_budget_parsing(budget, k):
     assert parse_budget(budget, 120) == k
 
 
-@pytest.mark.parametrize("budget", [0, -3, float("nan"), "nan", 2.5, "abc", None, True])
+@pytest.mark.parametrize("budget", [0, -3, float("nan"), "nan", 2.5, "2.5", "1e3", "0.0", "150%",
+                                    "abc", None, True])
 def test_budget_errors(budget):
     with pytest.raises(InputError) as err:
         parse_budget(budget, 120)
-    assert str(err.value) == (f"--budget {budget}: use a fraction between 0 and 1 of the training "
-                              f"pool or a whole count from 1 to 120 (the pool size)")
+    assert str(err.value) == (f"--budget {budget}: use a fraction in (0, 1] written with a decimal "
+                              f"point or % (0.05, 1.0, 5%) or a count written as an integer (1, 5000)")
 
 
 def test_budget_larger_than_pool(store):
     with pytest.raises(InputError) as err:
         run(store, "random", 121)
     assert str(err.value) == ("--budget 121: larger than the training pool (120 nodes); "
-                              "use at most 120 or a fraction below 1")
+                              "use at most 120 or a fraction such as 1.0")
 
 
 def test_option_errors(store, tmp_path):
@@ -446,10 +450,13 @@ def test_constraint_errors(skewed, tmp_path):
         (dict(min_per_class=3, include=inc), None),
         (dict(min_per_class="0.4"), "--min-per-class 0.4: 4 classes need 20 picks, more than the "
                                     "budget 12; use at most 3 or raise --budget"),
-        (dict(min_per_class="2.5"), "--min-per-class 2.5: use a whole count >= 1 or a fraction of "
-                                    "the budget between 0 and 1"),
-        (dict(min_per_class=0), "--min-per-class 0: use a whole count >= 1 or a fraction of the "
-                                "budget between 0 and 1"),
+        # the budget's rule, for a quota too (bigprune.common.options)
+        (dict(min_per_class="2.5"), "--min-per-class 2.5: use a fraction in (0, 1] written with a "
+                                    "decimal point or % (0.05, 1.0, 5%) or a count written as an "
+                                    "integer (1, 5000)"),
+        (dict(min_per_class=0), "--min-per-class 0: use a fraction in (0, 1] written with a "
+                                "decimal point or % (0.05, 1.0, 5%) or a count written as an "
+                                "integer (1, 5000)"),
         (dict(budget=None), "--budget: required (a fraction of the training pool or a count) "
                             "unless --radius is given with --strategy kcenter"),
         (dict(radius=1.0), "--radius 1.0: give --budget or --radius, not both; the radius mode "
