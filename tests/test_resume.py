@@ -176,6 +176,29 @@ def test_killed_at_a_named_point_resumes_to_the_same_bytes(scenario, faulted, st
     assert set(plan(work, capsys)) == {"skip"}
 
 
+def test_a_killed_select_leaves_a_temporary_that_the_next_select_sweeps(done, tmp_path, capsys):
+    """A standalone select killed between writing and renaming its output; a live writer's
+    temporary in the same folder is left alone."""
+    out = tmp_path / "out"
+    out.mkdir()
+    live = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)"])
+    try:
+        (out / f".other.parquet.{live.pid}.tmp").write_text("being written")
+        args = ["select", "--store", str(done / "store"), "--strategy", "random", "--budget", "0.05",
+                "--out", str(out / "picks.parquet"), "--threads", "1", "--quiet"]
+        killed = subprocess.Popen([sys.executable, "-m", "bigprune", *args], stdout=subprocess.DEVNULL,
+                                  env={**bench.environment(), ENV: "select:after-temp-write"})
+        assert killed.wait() == -signal.SIGKILL
+        assert sorted(p.name for p in out.iterdir()) == sorted(
+            [f".picks.parquet.{killed.pid}.tmp", f".other.parquet.{live.pid}.tmp"])
+        assert main(args) == 0
+        assert sorted(p.name for p in out.iterdir()) == sorted(
+            ["picks.parquet", "picks.json", f".other.parquet.{live.pid}.tmp"])
+    finally:
+        live.kill()
+        live.wait()
+
+
 def test_stale_lock_is_taken_over(done, capsys):
     dead = subprocess.Popen([sys.executable, "-c", "pass"])
     dead.wait()  # its pid now names no process

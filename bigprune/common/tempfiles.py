@@ -7,12 +7,6 @@ import os
 from pathlib import Path
 
 
-def temp_path(path):
-    """This process's temporary for ``path``."""
-    path = Path(path)
-    return path.with_name(f".{path.name}.{os.getpid()}.tmp")
-
-
 def sweep_temps(folder):
     """Remove the temporaries in ``folder`` left by processes that no longer run."""
     folder = Path(folder)
