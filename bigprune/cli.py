@@ -90,7 +90,9 @@ def _parser():
 
     p = sub.add_parser("demo", parents=[common], formatter_class=fmt, epilog=EXAMPLES["demo"],
                        help="generate the marketplace scenario and run the whole pipeline on it")
-    p.add_argument("--workdir", required=True, metavar="DIR", help="where the data, store and outputs go")
+    p.add_argument("--workdir", required=True, metavar="DIR",
+                   help="where the data, store and outputs go: a new or empty folder, or one an "
+                        "earlier demo made (it holds a .bigprune-demo file)")
     p.add_argument("--nodes", type=int, default=None, metavar="N", help="listings to generate")
     p.add_argument("--seed", type=int, default=0, metavar="S", help="random seed (default 0)")
 

@@ -14,6 +14,7 @@ from ..common.jsonout import dumps
 from ..common.memory import peak_rss
 from ..common.sources import edge_files
 from ..common.store import Store
+from ..common.faults import fault
 
 
 def plan_job(job):
@@ -140,6 +141,7 @@ def run_job(path, dry_run=False, echo=print):
                     Path(entry["out"]).parent.mkdir(parents=True, exist_ok=True)
                     result = _run_select(store, entry, opts)
                     lists = fingerprints([entry[k] for k in ("include", "exclude") if entry[k]])
+                    fault("select", "before-manifest")
                     store.record_output(entry["out"], key(step["params"], _comparable({"lists": lists}),
                                                           store.entry("propagate")["dir"]))
             except BigpruneError as exc:
@@ -174,6 +176,7 @@ def _run_study(store, step, opts):
                    repeats=entry["repeats"], answers=entry["answers"], tolerance=entry["tolerance"],
                    targets=entry["targets"], **opts)
     # keyed with the features now committed, which plan_job compares against on the next run
+    fault("study", "before-manifest")
     store.record_output(Path(entry["out"]) / "study.json",
                         key(step["params"], store.entry("propagate")["dir"]))
     return {"cells_run": result["cells"]["run"], "best": result["recommendation"]["best"]}

@@ -35,6 +35,9 @@ from .proxy import DEFAULT_L2, L2_GRID
 from ..common.runtime import progress, set_threads
 from ..common.schema import NO_LABEL, SPLIT_CODES
 from ..common.store import Store
+from ..common.store import reads_store
+from ..common.faults import fault
+from ..common.tempfiles import sweep_temps
 
 DEFAULT_BUDGETS = (0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1.0)
 DEFAULT_REPEATS = 3
@@ -55,6 +58,7 @@ ONE_THREAD = {name: "1" for name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", 
                                      "NUMBA_NUM_THREADS")}
 
 
+@reads_store
 def study(store, out, budgets=DEFAULT_BUDGETS, strategies=None, repeats=DEFAULT_REPEATS,
           answers=None, tolerance=DEFAULT_TOLERANCE, targets="test", l2=None, standardize=False,
           memory_budget=DEFAULT_BUDGET, threads=None):
@@ -311,6 +315,8 @@ def _study(setup, out, tolerance, memory, threads):
 
     folder = out / "cells"
     folder.mkdir(parents=True, exist_ok=True)
+    sweep_temps(out)  # left by a study killed while writing
+    sweep_temps(folder)
     done = {c["name"]: _read_cell(folder / f"{c['name']}.json", c["key"]) for c in setup["cells"]}
     todo = [c for c in setup["cells"] if done[c["name"]] is None]
     workers, per_worker = _plan_workers(setup, len(todo), memory, threads)
@@ -320,6 +326,7 @@ def _study(setup, out, tolerance, memory, threads):
                "standardize": setup["standardize"], "tune_rows": setup["tune_rows"],
                "tune_truth": setup["tune_truth"],
                "memory": per_worker, "threads": 1 if workers > 1 else threads}
+    context["manifest"] = setup["store"].manifest()  # this process's pin: every cell reads one commit
     with progress(total=len(todo), desc="study", unit="cell") as bar:
         for cell, result in _run_all(todo, context, workers):
             record = {"key": cell["key"], "cell": {k: cell[k] for k in ("rule", "budget", "k", "repeat", "seed")},
@@ -426,7 +433,7 @@ def _run_cell(cell):
 
     started = time.perf_counter()
     ctx = _WORKER
-    store = Store(ctx["store"])
+    store = Store(ctx["store"], manifest=ctx["manifest"])  # the study holds the store meanwhile
     result = {}
     if cell["rule"] == FULL:
         rows = ctx["pool"]
@@ -492,7 +499,10 @@ def _write_json(path, payload):
             fh.write(dumps(payload, indent=1))
             fh.flush()
             os.fsync(fh.fileno())
+        fault("study", "after-temp-write")
+        fault("study", "before-rename")
         os.replace(tmp, path)
+        fault("study", "after-rename")
     finally:
         tmp.unlink(missing_ok=True)
 

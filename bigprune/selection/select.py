@@ -21,6 +21,9 @@ from ..common.runtime import set_threads
 from .kcenter import GROUP_ROWS, PRODUCT_ITEMS, cover
 from ..common.schema import NO_LABEL, NO_SPLIT, SPLIT_CODES
 from ..common.store import STAGING, Store
+from ..common.store import reads_store
+from ..common.faults import fault
+from ..common.tempfiles import sweep_temps
 from .strategies import NEEDS_POOL_ROWS, NEEDS_PROXY, STRATEGIES, Problem
 
 # Which nodes each ``--targets`` choice means: split codes.
@@ -29,6 +32,7 @@ TARGETS = {"test": SPLIT_CODES["test"], "valid": SPLIT_CODES["valid"], "unlabele
 PROXY_ROW_COPIES = 4
 
 
+@reads_store
 def select(store, strategy, budget=None, targets="test", seed=0, out=None, memory_budget="4GiB",
            threads=None, embedding_hop=None, initial=None, include=None, exclude=None,
            min_per_class=None, radius=None):
@@ -410,14 +414,18 @@ def _write(out, store, order, labels, report):
     table = pa.table({"node_id": ids, "rank": np.arange(len(order), dtype=np.int64),
                       "label": labels.astype(np.int64)})
     report_path = out.with_suffix(".json")
+    sweep_temps(out.parent)  # left by a select killed while writing
     temps = [p.with_name(f".{p.name}.{os.getpid()}.tmp") for p in (out, report_path)]
     placed = []
     try:
         pq.write_table(table, temps[0])
+        fault("select", "after-temp-write")
         with open(temps[1], "w") as fh:
             fh.write(dumps(report, indent=2))
+        fault("select", "before-rename")
         os.replace(temps[1], report_path)
         placed.append(report_path)
+        fault("select", "after-rename")  # the report placed, its selection not yet
         os.replace(temps[0], out)
     except BaseException:
         for path in placed:  # a report without its selection would mislead
