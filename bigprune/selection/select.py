@@ -390,18 +390,22 @@ def _select(problem, strategy, label, out, started, extra):
     report["seconds"] = round(time.perf_counter() - started, 3)
     report["peak_rss"] = peak_rss()
     if out is not None:
-        _write(out, problem.store, order, label[order], report)
+        serves = np.bincount(assign, minlength=len(order))
+        _write(out, problem.store, order, label[order], report, choice.reason, serves)
     return {**report, "indices": order}
 
 
-def _write(out, store, order, labels, report):
-    """``out`` (node_id, rank, label) and ``out.json`` (the report), renamed into place."""
+def _write(out, store, order, labels, report, reason, serves):
+    """``out`` (node_id, rank, label, reason, serves) and ``out.json`` (the report), renamed
+    into place. reason : why each pick is there; serves : int64, the targets whose nearest
+    selected node each pick is."""
     import pyarrow as pa
     import pyarrow.parquet as pq
 
     ids = store.table("graph", "node_id").column("node_id").take(pa.array(order))
     table = pa.table({"node_id": ids, "rank": np.arange(len(order), dtype=np.int64),
-                      "label": labels.astype(np.int64)})
+                      "label": labels.astype(np.int64), "reason": pa.array(reason.tolist(), pa.string()),
+                      "serves": serves.astype(np.int64)})
     report_path = out.with_suffix(".json")
     temps = [p.with_name(f".{p.name}.{os.getpid()}.tmp") for p in (out, report_path)]
     placed = []

@@ -168,7 +168,7 @@ def test_output_files_and_columns(store, tmp_path):
     out = tmp_path / "picked.parquet"
     result = run(store, "kcenter", 15, out=out)
     table = pq.read_table(out)
-    assert table.column_names == ["node_id", "rank", "label"]
+    assert table.column_names == ["node_id", "rank", "label", "reason", "serves"]
     assert str(table.schema.field("rank").type) == "int64"
     assert str(table.schema.field("label").type) == "int64"
     picked = result["indices"]
