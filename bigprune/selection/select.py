@@ -30,7 +30,7 @@ PROXY_ROW_COPIES = 4
 
 def select(store, strategy, budget=None, targets="test", seed=0, out=None, memory_budget="4GiB",
            threads=None, embedding_hop=None, initial=None, include=None, exclude=None,
-           min_per_class=None, radius=None):
+           min_per_class=None, radius=None, cover=None):
     """Choose ``budget`` training-pool nodes with ``strategy`` and report what they cover.
 
     Parameters
@@ -52,6 +52,8 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
         pool gets at least that many picks, capped at its pool size.
     radius : float >= 0 or None; ``kcenter`` only, instead of ``budget``: the fewest greedy picks
         that bring every target within ``radius`` (plus any quota picks).
+    cover : share of the targets in (0, 1] (a float, or text such as ``"0.95"`` or ``"95%"``),
+        with ``radius`` only: the fewest greedy picks that bring that share within ``radius``.
 
     Returns
     -------
@@ -65,6 +67,7 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
     if targets not in TARGETS:
         raise InputError(f"--targets {targets}: unknown; use one of {', '.join(TARGETS)}")
     radius = _check_radius(radius, strategy, budget)
+    cover = _check_cover(cover, radius)
     if include is not None and initial is not None:
         raise InputError(f"--include {include}: give either an include file or initial ids, not both")
     out = _check_out(out, store)
@@ -85,6 +88,8 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
     _check_computed(store, hop, np.concatenate([whole_pool, chosen_targets]), targets)
     pool, k, start, quota, constraints = _constrain(
         store, label, whole_pool, budget, radius, initial, include, exclude, min_per_class)
+    if cover is not None:
+        constraints["cover"] = cover
     embedding = (store.stage_dir("graph") / "features.npy" if hop == 0
                  else store.stage_dir("propagate") / f"hop_{hop}.npy")
     width = np.load(embedding, mmap_mode="r").shape[1]
@@ -105,7 +110,7 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
     try:
         rule_bytes = memory - FIXED_OVERHEAD - _common_bytes(strategy, len(pool), k, width, classes)
         problem = Problem(store, pool, chosen_targets, k, start, int(seed), embedding, window_rows,
-                          label, quota, radius, proxy_rows, chunk, rule_bytes)
+                          label, quota, radius, proxy_rows, chunk, rule_bytes, cover=cover)
         return _select(problem, strategy, label, out, started, extra)
     finally:
         if scratch is not None:
@@ -223,6 +228,23 @@ def _check_radius(radius, strategy, budget):
     if budget is not None:
         raise InputError(f"--radius {radius}: give --budget or --radius, not both; the radius "
                          f"mode picks as many nodes as it needs")
+    return value
+
+
+def _check_cover(cover, radius):
+    """The share of targets ``--cover`` asks for, as a float in (0, 1], or None (every one)."""
+    if cover is None:
+        return None
+    text = str(cover).strip()
+    try:
+        value = float(text[:-1]) / 100 if text.endswith("%") else float(text)
+    except ValueError:
+        value = math.nan
+    if isinstance(cover, bool) or not 0 < value <= 1:
+        raise InputError(f"--cover {cover}: use a share of the targets in (0, 1], e.g. 0.95 or 95%")
+    if radius is None:
+        raise InputError(f"--cover {cover}: goes with --radius (the share of targets to bring "
+                         f"within it); give --radius R too")
     return value
 
 
@@ -380,7 +402,7 @@ def _select(problem, strategy, label, out, started, extra):
         dist, assign = cover(problem.target_source, rows, seed=problem.seed)
     report = {"strategy": strategy, "selected": int(len(order)), "pool": int(len(problem.pool)),
               "targets": int(len(problem.targets)), "seed": problem.seed, **extra}
-    report.update(coverage(dist, assign, len(order)))
+    report.update(coverage(dist, assign, len(order), asked=problem.radius))
     report["classes"] = class_counts(label[order])
     if "include" in extra["constraints"]:
         report["changed"] = changes(order, problem.initial)

@@ -17,6 +17,7 @@ count is whatever the radius needs. Per-class quotas hold for every rule:
   rises, so the early prefix keeps the coverage it bought). In radius mode nothing is dropped:
   the quota picks come on top of the prefix that reaches the radius.
 """
+import math
 from collections import Counter, namedtuple
 from dataclasses import dataclass, field
 from functools import cached_property
@@ -55,7 +56,8 @@ class Problem:
     seed : int. embedding : path of the (N, d) ``.npy`` holding the distance space.
     window_rows : int, rows read per window from the embedding file (planned from the budget).
     label : int64 (N,), every node's label. quota : {class: minimum count} (capped at the
-    class's pool size). radius : float or None, kcenter's radius mode.
+    class's pool size). radius : float or None, kcenter's radius mode; cover : float in (0, 1)
+    or None (every target), the share of targets the radius mode brings within ``radius``.
     proxy_rows : int, rows per chunk when the proxy model trains (planned from the budget).
     target_chunk : None (target rows are held in memory) or (chunk rows, group rows, scratch
     directory): the greedy keeps them on disk (see :class:`bigprune.selection.kcenter.RowChunks`).
@@ -75,6 +77,7 @@ class Problem:
     proxy_rows: int = 65536
     target_chunk: tuple = None
     rule_bytes: int = 1 << 30
+    cover: float = None
 
     def rows(self, index):
         """Rows ``index`` (sorted int64) of the embedding as float32 (len, d).
@@ -262,21 +265,32 @@ def _drop_surplus(problem, order, count):
 def kcenter(problem):
     """k-supplier greedy: targets are the target nodes, candidates the pool (3-approximation).
 
-    In radius mode, the shortest greedy prefix whose radius is at most ``problem.radius``.
+    In radius mode, the shortest greedy prefix whose radius is at most ``problem.radius`` (with
+    ``problem.cover``: that brings that share of the targets within it).
     """
     radius_mode = problem.radius is not None
     outcome = greedy(problem.target_source, problem.pool_rows,
                      len(problem.pool) if radius_mode else problem.k,
                      initial=problem.pool_positions(problem.initial), seed=problem.seed,
-                     radius=problem.radius)
-    if radius_mode and outcome.dist.max() > problem.radius:
-        best = outcome.dist.max()
-        # Rounded up, so that the value suggested does work.
-        text = f"{best:.6g}" if float(f"{best:.6g}") >= best else f"{best * (1 + 1e-5):.6g}"
-        raise InputError(f"--radius {problem.radius}: cannot be reached even with the whole pool "
-                         f"({len(problem.pool)} candidates); use --radius {text} or more")
+                     radius=problem.radius, cover=problem.cover)
+    if radius_mode:
+        _check_reached(problem, outcome.dist)
     order, reason, covering, info = _with_quotas(problem, outcome, pool_targets=False)
     return Choice(order, reason, covering, {**info, "greedy": outcome.stats})
+
+
+def _check_reached(problem, dist):
+    """Refuse a radius that the whole pool leaves short of the share asked, naming the
+    smallest radius that would work (rounded up, so that the value suggested does work)."""
+    share = 1.0 if problem.cover is None else problem.cover
+    need = math.ceil(round(share * len(dist), 9))
+    best = float(np.sort(dist)[need - 1])
+    if best <= problem.radius:
+        return
+    text = f"{best:.6g}" if float(f"{best:.6g}") >= best else f"{best * (1 + 1e-5):.6g}"
+    asked = "" if problem.cover is None else f" --cover {problem.cover:g}"
+    raise InputError(f"--radius {problem.radius}{asked}: cannot be reached even with the whole pool "
+                     f"({len(problem.pool)} candidates); use --radius {text} or more")
 
 
 def kmedian(problem):
