@@ -62,7 +62,7 @@ optimistic, the --answers score is not); with no valid nodes it is 1 (scikit-lea
   bigprune select --store store/ --strategy random --budget 5000 --seed 1 --out random.parquet
   bigprune select --store store/ --strategy kmedian --budget 0.05 --include yesterday.parquet \\
                   --exclude flagged.parquet --min-per-class 20 --out today.parquet
-  bigprune select --store store/ --strategy kcenter --radius 0.8 --out within.parquet""",
+  bigprune select --store store/ --strategy kcenter --radius 9 --cover 0.9 --out within.parquet""",
 }
 
 
@@ -129,7 +129,11 @@ def _parser():
                         f"--radius")
     p.add_argument("--radius", default=None, metavar="R",
                    help="kcenter only, instead of --budget: the fewest nodes that bring every "
-                        "target within distance R")
+                        "target within distance R (the report's coverage shows the scale)")
+    p.add_argument("--cover", default=None, metavar="SHARE",
+                   help="with --radius: the shortest prefix of the kcenter greedy that brings this "
+                        "share of the targets within R, e.g. 0.95 or 95%% (default: every target; "
+                        "a few outliers can set the radius of every target)")
     p.add_argument("--min-per-class", default=None, metavar="N",
                    help="each class gets at least N picks (capped at its pool size); N by the "
                         "budget's rule: a count (20) or a fraction of the budget (0.1, 10%%)")
@@ -269,7 +273,8 @@ def _run(args, emit):
 
     report = select(args.store, args.strategy, args.budget, targets=args.targets, seed=args.seed,
                     out=args.out, include=args.include, exclude=args.exclude,
-                    min_per_class=args.min_per_class, radius=args.radius, **opts)
+                    min_per_class=args.min_per_class, radius=args.radius,
+                    cover=args.cover, **opts)
     return _printable(report)
 
 

@@ -165,7 +165,8 @@ def _run_select(store, entry, opts):
     Path(entry["out"]).parent.mkdir(parents=True, exist_ok=True)
     return select(store, entry["strategy"], entry["budget"], targets=entry["targets"], seed=entry["seed"],
                   out=entry["out"], include=include, exclude=entry["exclude"],
-                  min_per_class=entry["min_per_class"], radius=entry["radius"], **opts)
+                  min_per_class=entry["min_per_class"], radius=entry["radius"],
+                  cover=entry["cover"], **opts)
 
 
 def _run_study(store, step, opts):

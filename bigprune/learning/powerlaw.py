@@ -1,5 +1,10 @@
 """Power-law learning curves: ``error ≈ a · n^(-alpha)`` fitted in log-log space."""
+import math
+
 import numpy as np
+
+# A fit from fewer distinct training-set sizes than this is marked unreliable.
+MIN_BUDGETS = 5
 
 
 def fit_power_law(n, error, bootstrap=1000, seed=0, level=0.95):
@@ -15,17 +20,19 @@ def fit_power_law(n, error, bootstrap=1000, seed=0, level=0.95):
 
     Returns
     -------
-    dict with ``alpha``, ``a``, ``r2``, ``alpha_low``, ``alpha_high``, ``points``, ``dropped``;
-    NaN where fewer than two distinct sizes remain, and then ``reason`` says so (JSON outputs
-    write NaN as null).
+    dict with ``alpha``, ``a``, ``r2``, ``alpha_low``, ``alpha_high``, ``points``, ``dropped``
+    (NaN where fewer than two distinct sizes remain, and then ``reason`` says so; JSON outputs
+    write NaN as null), ``budgets`` (distinct sizes fitted), ``reliable`` and
+    ``unreliable_because`` (the reasons, see :func:`reliability`).
     """
     n = np.asarray(n, dtype=np.float64)
     error = np.asarray(error, dtype=np.float64)
     keep = (n > 0) & (error > 0) & np.isfinite(error)
     x, y = np.log(n[keep]), np.log(error[keep])
-    result = {"points": int(keep.sum()), "dropped": int((~keep).sum())}
+    result = {"points": int(keep.sum()), "dropped": int((~keep).sum()), "budgets": int(np.unique(x).size)}
     if np.unique(x).size < 2:
-        return {**result, **dict.fromkeys(("alpha", "a", "r2", "alpha_low", "alpha_high"), float("nan")),
+        nan = dict.fromkeys(("alpha", "a", "r2", "alpha_low", "alpha_high"), float("nan"))
+        return {**result, **nan, **reliability(result["budgets"], math.nan, math.nan),
                 "reason": "fewer than two distinct training-set sizes with an error above 0"}
     slope, intercept, r2 = _line(x, y)
     rng = np.random.default_rng(seed)
@@ -37,7 +44,22 @@ def fit_power_law(n, error, bootstrap=1000, seed=0, level=0.95):
     tail = (1 - level) / 2
     low, high = (np.quantile(-np.asarray(slopes), [tail, 1 - tail]) if slopes else (np.nan, np.nan))
     return {**result, "alpha": float(-slope), "a": float(np.exp(intercept)), "r2": float(r2),
-            "alpha_low": float(low), "alpha_high": float(high)}
+            "alpha_low": float(low), "alpha_high": float(high),
+            **reliability(result["budgets"], float(low), float(high))}
+
+
+def reliability(budgets, low, high):
+    """``{"reliable", "unreliable_because"}``: a fit from fewer than ``MIN_BUDGETS`` distinct
+    sizes, or whose interval of ``alpha`` is missing or holds zero (the error may not fall with
+    n at all), is unreliable; the reasons are short sentences (empty when reliable)."""
+    reasons = []
+    if budgets < MIN_BUDGETS:
+        reasons.append(f"{budgets} budgets, fewer than {MIN_BUDGETS}")
+    if not (math.isfinite(low) and math.isfinite(high)):
+        reasons.append("no interval for alpha")
+    elif low <= 0 <= high:
+        reasons.append("the interval of alpha holds 0")
+    return {"reliable": not reasons, "unreliable_because": reasons}
 
 
 def _line(x, y):

@@ -14,6 +14,7 @@ from pathlib import Path
 import numpy as np
 
 from ..common.jsonout import dumps
+from .powerlaw import MIN_BUDGETS
 
 CAUTION = ("A subset that matches the full pool's overall accuracy can still do worse on the "
            "classes and sub-groups it holds few examples of: a rare class or a small community "
@@ -21,6 +22,8 @@ CAUTION = ("A subset that matches the full pool's overall accuracy can still do 
            "tolerance. Read the per-class table below, and check the groups that matter to you, "
            "before training the production model on a pruned set.")
 CURVES, PER_CLASS = "error_curves.png", "per_class.png"
+# What the recommendation says of a rule that is within the tolerance only with the full pool.
+NOT_REACHED = "not reached"
 
 
 def write_outputs(out, rows, summary):
@@ -193,9 +196,12 @@ def report_blocks(rows, summary, classes, images):
             lines.append(f"Of those, {best['fill_picks']:,} came from the greedy's farthest-first fill, "
                          "chosen after every target was already served: that part of the subset does "
                          "not follow the targets.")
+        lines += recommendation_notes(rec)
+    else:
+        lines.append("No rule reaches it below the full pool.")
     blocks.append(("p", " ".join(lines)))
     blocks.append(("table", ["rule", "smallest enough budget", "training nodes", "mean accuracy"],
-                   [[rule, "none" if v is None else f"{v['budget']:g}",
+                   [[rule, NOT_REACHED if v is None else f"{v['budget']:g}",
                      "" if v is None else f"{v['training_nodes']:,}",
                      "" if v is None else f"{v['accuracy']:.4f}"] for rule, v in rec["rules"].items()]))
 
@@ -210,9 +216,13 @@ def report_blocks(rows, summary, classes, images):
     blocks.append(("table", header, body))
 
     blocks.append(("h2", "Power-law fits: error ≈ a · n^(-alpha)"))
-    blocks.append(("table", ["rule", "alpha", "95% interval", "a", "R²", "points"],
+    blocks.append(("table", ["rule", "alpha", "95% interval", "a", "R²", "points", "reliable"],
                    [[rule, _num(f["alpha"]), f"{_num(f['alpha_low'])} to {_num(f['alpha_high'])}",
-                     _num(f["a"]), _num(f["r2"]), str(f["points"])] for rule, f in fits.items()]))
+                     _num(f["a"]), _num(f["r2"]), str(f["points"]), _reliable_text(f)]
+                    for rule, f in fits.items()]))
+    if any(not f.get("reliable", True) for f in fits.values()):
+        blocks.append(("p", f"A fit is unreliable from fewer than {MIN_BUDGETS} budgets or when "
+                            "its interval of alpha holds 0: do not extrapolate from it."))
     blocks.append(("img", CURVES, images[CURVES], "Error against training nodes, log-log"))
 
     blocks.append(("h2", "Per-class accuracy at the recommended budget"))
@@ -225,7 +235,7 @@ def report_blocks(rows, summary, classes, images):
         for rule, v in rec["rules"].items():
             if v is not None:
                 value = per_class_at(rows, rule, v["training_nodes"], classes)[i]
-                worse = value < full[i] - rec["tolerance"]
+                worse = str(c) in v.get("lower_classes", ())
                 line.append(f"{value:.3f}" + (" (lower)" if worse else ""))
         body.append(line)
     blocks.append(("table", header, body))
@@ -248,6 +258,30 @@ def report_blocks(rows, summary, classes, images):
     blocks.append(("table", ["rule", "budget", "nodes", "degree", "PageRank", "homophily",
                              "radius", "mean distance"], body))
     return blocks
+
+
+def recommendation_notes(rec):
+    """Sentences on the recommended rule's weak classes, a tie it won and the rules that never
+    reached the tolerance below the full pool."""
+    notes = []
+    best = rec["rules"][rec["best"]]
+    lower = best.get("lower_classes", [])
+    if lower:
+        notes.append(f"At that budget {len(lower)} of {best['classes']} classes fall more than the "
+                     f"tolerance below the full pool: {', '.join(lower)} (see the per-class table).")
+    tie = rec.get("tie")
+    if tie:
+        notes.append(f"Tie: {', '.join(tie['rules'])} each reach it with {tie['training_nodes']:,} "
+                     f"nodes; {rec['best']} is named by the {tie['broken_by']}.")
+    if rec.get("not_reached"):
+        notes.append(f"{NOT_REACHED.capitalize()} below the full pool: {', '.join(rec['not_reached'])}.")
+    return notes
+
+
+def _reliable_text(fit):
+    if fit.get("reliable", True):
+        return "yes"
+    return "no: " + "; ".join(fit["unreliable_because"])
 
 
 def _num(value):

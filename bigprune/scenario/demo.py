@@ -10,6 +10,7 @@ from pathlib import Path
 
 from ..common.errors import InputError
 from ..job.job import run_job
+from ..learning.studyreport import NOT_REACHED, recommendation_notes
 from ..common.memory import DEFAULT_BUDGET, format_size, peak_rss
 from .scenario import generate
 
@@ -117,7 +118,7 @@ def _study_lines(summary):
              f"{'rule':<14}{'enough at':>10}{'nodes':>9}{'accuracy':>10}"]
     for rule, pick in rec["rules"].items():
         if pick is None:
-            lines.append(f"{rule:<14}{'none':>10}")
+            lines.append(f"{rule:<14}{NOT_REACHED:>10}")
         else:
             lines.append(f"{rule:<14}{pick['budget']:>10g}{pick['training_nodes']:>9,}{pick['accuracy']:>10.3f}")
     if rec["best"]:
@@ -126,6 +127,7 @@ def _study_lines(summary):
         if fill:
             lines.append(f"  ({fill:,} of those nodes came from kcenter's farthest-first fill, chosen after "
                          "every target was served; see the study report)")
+        lines += [f"  {note}" for note in recommendation_notes(rec)]
     return "\n".join(lines)
 
 

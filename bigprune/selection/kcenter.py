@@ -167,7 +167,7 @@ class Nearest:
 
 
 def greedy(targets, candidates, k, initial=(), pool_targets=False, exact=False, seed=0,
-           nlist=None, desc="kcenter", radius=None, allowed=None, covered=None):
+           nlist=None, desc="kcenter", radius=None, allowed=None, covered=None, cover=None):
     """Choose ``k`` candidate rows that cover the targets (see the module docstring).
 
     Parameters
@@ -182,6 +182,8 @@ def greedy(targets, candidates, k, initial=(), pool_targets=False, exact=False, 
     seed : int, for k-means and the IVF index.
     radius : float or None. If given, stop as soon as every target lies within ``radius`` (at
         most ``k`` picks, no fill): the shortest greedy prefix that reaches it.
+    cover : float in (0, 1] or None (every target), with ``radius``: stop as soon as this share
+        of the targets lies within ``radius`` instead.
     allowed : int sequence or None, the only candidate rows that may be picked after
         ``initial`` (default all), e.g. one class's rows when a class quota must be met; the
         nearest-candidate query searches only these. With ``pool_targets`` the picks stop when
@@ -206,7 +208,7 @@ def greedy(targets, candidates, k, initial=(), pool_targets=False, exact=False, 
                               state.sample(16 * RECALL_SAMPLE, seed), exact, seed, nlist)
         with _one_faiss_thread():
             return _greedy(state, nearest, candidates, k, initial, pool_targets, seed, desc,
-                           radius, rows, covered)
+                           _goal(state, radius, cover), rows, covered)
     finally:
         state.close()
 
@@ -231,7 +233,18 @@ def _as_source(targets):
     return np.ascontiguousarray(targets, dtype=np.float32)
 
 
-def _greedy(state, nearest, candidates, k, initial, pool_targets, seed, desc, radius, rows,
+def _goal(state, radius, cover):
+    """None (no radius), or a test of whether the picks so far reach ``radius`` for every
+    target or, with ``cover``, for that share of them."""
+    if radius is None:
+        return None
+    if cover is None or cover >= 1:
+        return lambda: state.radius_now() <= radius
+    need = math.ceil(round(cover * len(state.dist), 9))
+    return lambda: state.count_within(radius) >= need
+
+
+def _greedy(state, nearest, candidates, k, initial, pool_targets, seed, desc, reached, rows,
             covered):
     chosen = np.zeros(len(candidates), dtype=bool)
     order, trace = [], []
@@ -253,7 +266,7 @@ def _greedy(state, nearest, candidates, k, initial, pool_targets, seed, desc, ra
     queries = filled = 0
     with progress(total=k, desc=desc, unit="pick") as bar:
         bar.update(len(order))
-        while len(order) < k and not (radius is not None and state.radius_now() <= radius):
+        while len(order) < k and not (reached is not None and reached()):
             target, far = state.farthest()
             if target < 0 or (far <= 0 and not pool_targets):
                 break
@@ -267,7 +280,7 @@ def _greedy(state, nearest, candidates, k, initial, pool_targets, seed, desc, ra
             if not chosen[c]:
                 take(c)
                 bar.update(1)
-    if len(order) < k and radius is None and not pool_targets:
+    if len(order) < k and reached is None and not pool_targets:
         # Every target is served: spread the rest over the candidates, farthest first.
         more = greedy(None, candidates, k, initial=order, pool_targets=True, seed=seed,
                       desc=desc + " (fill)", allowed=rows).order[len(order):]

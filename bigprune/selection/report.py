@@ -10,15 +10,22 @@ CAUTION = ("A pruned training set can serve small classes and sub-groups worse t
 QUANTILES = {"p50": 0.5, "p90": 0.9, "p99": 0.99}
 
 
-def coverage(dist, assign, k):
+def coverage(dist, assign, k, asked=None):
     """Coverage and load of the selection.
 
     dist : float64 (m,), each target's L2 distance to its nearest selected node.
     assign : int64 (m,), that node's rank. k : int, selected count.
+    asked : float or None, the radius ``--radius`` asked for.
+    The radius (the largest distance) can be set by a few outlying targets: ``within`` gives
+    the share of targets at most the radius, the p90 and the p99 distance (and ``asked``) away.
     """
     load = np.bincount(assign, minlength=k)
     cover = {"radius": float(dist.max()), "mean": float(dist.mean())}
     cover.update({name: float(np.quantile(dist, q)) for name, q in QUANTILES.items()})
+    limits = {"radius": cover["radius"], "p90": cover["p90"], "p99": cover["p99"]}
+    if asked is not None:
+        limits["asked"] = float(asked)
+    cover["within"] = {name: float(np.mean(dist <= r)) for name, r in limits.items()}
     return {"coverage": cover, "load": {"max": int(load.max()), "mean": float(load.mean())}}
 
 

@@ -35,7 +35,7 @@ PROXY_ROW_COPIES = 4
 @reads_store
 def select(store, strategy, budget=None, targets="test", seed=0, out=None, memory_budget="4GiB",
            threads=None, embedding_hop=None, initial=None, include=None, exclude=None,
-           min_per_class=None, radius=None):
+           min_per_class=None, radius=None, cover=None):
     """Choose ``budget`` training-pool nodes with ``strategy`` and report what they cover.
 
     Parameters
@@ -58,6 +58,8 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
         rule: each class of the pool gets at least that many picks, capped at its pool size.
     radius : float >= 0 or None; ``kcenter`` only, instead of ``budget``: the fewest greedy picks
         that bring every target within ``radius`` (plus any quota picks).
+    cover : share of the targets in (0, 1] (a float, or text such as ``"0.95"`` or ``"95%"``),
+        with ``radius`` only: the fewest greedy picks that bring that share within ``radius``.
 
     Returns
     -------
@@ -71,6 +73,7 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
     if targets not in TARGETS:
         raise InputError(f"--targets {targets}: unknown; use one of {', '.join(TARGETS)}")
     radius = check_radius(radius, strategy, budget)
+    cover = _check_cover(cover, radius)
     if include is not None and initial is not None:
         raise InputError(f"--include {include}: give either an include file or initial ids, not both")
     out = _check_out(out, store)
@@ -91,6 +94,8 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
     _check_computed(store, hop, np.concatenate([whole_pool, chosen_targets]), targets)
     pool, k, start, quota, constraints = _constrain(
         store, label, whole_pool, budget, radius, initial, include, exclude, min_per_class)
+    if cover is not None:
+        constraints["cover"] = cover
     embedding = (store.stage_dir("graph") / "features.npy" if hop == 0
                  else store.stage_dir("propagate") / f"hop_{hop}.npy")
     width = np.load(embedding, mmap_mode="r").shape[1]
@@ -111,7 +116,7 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
     try:
         rule_bytes = memory - FIXED_OVERHEAD - _common_bytes(strategy, len(pool), k, width, classes)
         problem = Problem(store, pool, chosen_targets, k, start, int(seed), embedding, window_rows,
-                          label, quota, radius, proxy_rows, chunk, rule_bytes)
+                          label, quota, radius, proxy_rows, chunk, rule_bytes, cover=cover)
         return _select(problem, strategy, label, out, started, extra)
     finally:
         if scratch is not None:
@@ -231,6 +236,23 @@ def check_radius(radius, strategy, budget, names=FLAGS):
     if budget is not None:
         raise InputError(f"{label}: give {names.hint('budget')} or {names.hint('radius')}, not "
                          f"both; the radius mode picks as many nodes as it needs")
+    return value
+
+
+def _check_cover(cover, radius):
+    """The share of targets ``--cover`` asks for, as a float in (0, 1], or None (every one)."""
+    if cover is None:
+        return None
+    text = str(cover).strip()
+    try:
+        value = float(text[:-1]) / 100 if text.endswith("%") else float(text)
+    except ValueError:
+        value = math.nan
+    if isinstance(cover, bool) or not 0 < value <= 1:
+        raise InputError(f"--cover {cover}: use a share of the targets in (0, 1], e.g. 0.95 or 95%")
+    if radius is None:
+        raise InputError(f"--cover {cover}: goes with --radius (the share of targets to bring "
+                         f"within it); give --radius R too")
     return value
 
 
@@ -391,7 +413,7 @@ def _select(problem, strategy, label, out, started, extra):
         dist, assign = cover(problem.target_source, rows, seed=problem.seed)
     report = {"strategy": strategy, "selected": int(len(order)), "pool": int(len(problem.pool)),
               "targets": int(len(problem.targets)), "seed": problem.seed, **extra}
-    report.update(coverage(dist, assign, len(order)))
+    report.update(coverage(dist, assign, len(order), asked=problem.radius))
     report["classes"] = class_counts(label[order])
     if "include" in extra["constraints"]:
         report["changed"] = changes(order, problem.initial)
@@ -401,18 +423,22 @@ def _select(problem, strategy, label, out, started, extra):
     report["seconds"] = round(time.perf_counter() - started, 3)
     report["peak_rss"] = peak_rss()
     if out is not None:
-        _write(out, problem.store, order, label[order], report)
+        serves = np.bincount(assign, minlength=len(order))
+        _write(out, problem.store, order, label[order], report, choice.reason, serves)
     return {**report, "indices": order}
 
 
-def _write(out, store, order, labels, report):
-    """``out`` (node_id, rank, label) and ``out.json`` (the report), renamed into place."""
+def _write(out, store, order, labels, report, reason, serves):
+    """``out`` (node_id, rank, label, reason, serves) and ``out.json`` (the report), renamed
+    into place. reason : why each pick is there; serves : int64, the targets whose nearest
+    selected node each pick is."""
     import pyarrow as pa
     import pyarrow.parquet as pq
 
     ids = store.table("graph", "node_id").column("node_id").take(pa.array(order))
     table = pa.table({"node_id": ids, "rank": np.arange(len(order), dtype=np.int64),
-                      "label": labels.astype(np.int64)})
+                      "label": labels.astype(np.int64), "reason": pa.array(reason.tolist(), pa.string()),
+                      "serves": serves.astype(np.int64)})
     report_path = out.with_suffix(".json")
     sweep_temps(out.parent)  # left by a select killed while writing
     temps = [p.with_name(f".{p.name}.{os.getpid()}.tmp") for p in (out, report_path)]

@@ -17,6 +17,7 @@ count is whatever the radius needs. Per-class quotas hold for every rule:
   rises, so the early prefix keeps the coverage it bought). In radius mode nothing is dropped:
   the quota picks come on top of the prefix that reaches the radius.
 """
+import math
 from collections import Counter, namedtuple
 from dataclasses import dataclass, field
 from functools import cached_property
@@ -31,13 +32,15 @@ from .kcenter import RowChunks, cover, greedy
 from .kmeans import clusters, serve
 from .kmedian import PAIR_BYTES, neighbour_lists, plan_neighbours
 from .kmedian import greedy as facility_greedy
+from .reasons import QUOTA, forced, reasons
 from ..common.memory import chunk_ranges, rows_per_chunk
 
 # Valid rows the hardness rules' proxy penalty is chosen on, at most (a seeded sample above).
 VALID_ROWS = 100_000
 
-Choice = namedtuple("Choice", "order outcome info", defaults=(None, None))
-Choice.__doc__ = """order : int64 (k,), dense indices. outcome : the kcenter ``Outcome`` whose
+Choice = namedtuple("Choice", "order reason outcome info", defaults=(None, None))
+Choice.__doc__ = """order : int64 (k,), dense indices. reason : object (k,), why each pick is
+there (:mod:`bigprune.selection.reasons`). outcome : the kcenter ``Outcome`` whose
 ``dist``/``assign`` are the report's targets' coverage, or None (the report computes it).
 info : dict or None, JSON-ready facts for the report (greedy counters, how scores were made)."""
 
@@ -53,7 +56,8 @@ class Problem:
     seed : int. embedding : path of the (N, d) ``.npy`` holding the distance space.
     window_rows : int, rows read per window from the embedding file (planned from the budget).
     label : int64 (N,), every node's label. quota : {class: minimum count} (capped at the
-    class's pool size). radius : float or None, kcenter's radius mode.
+    class's pool size). radius : float or None, kcenter's radius mode; cover : float in (0, 1)
+    or None (every target), the share of targets the radius mode brings within ``radius``.
     proxy_rows : int, rows per chunk when the proxy model trains (planned from the budget).
     target_chunk : None (target rows are held in memory) or (chunk rows, group rows, scratch
     directory): the greedy keeps them on disk (see :class:`bigprune.selection.kcenter.RowChunks`).
@@ -73,6 +77,7 @@ class Problem:
     proxy_rows: int = 65536
     target_chunk: tuple = None
     rule_bytes: int = 1 << 30
+    cover: float = None
 
     def rows(self, index):
         """Rows ``index`` (sorted int64) of the embedding as float32 (len, d).
@@ -182,10 +187,11 @@ def largest_remainder(total, sizes, floors):
     return np.asarray(counts, dtype=np.int64)
 
 
-def _pick(problem, ranking):
+def _pick(problem, ranking, info=None):
     """``initial``, then the quota reservations and the best of the rest, in ``ranking`` order.
 
-    ranking : int64, pool nodes best first (``initial`` members are skipped).
+    ranking : int64, pool nodes best first (``initial`` members are skipped). A reserved node
+    ranked below the budget's cut is a quota pick. Returns a :data:`Choice`.
     """
     rest = ranking[~np.isin(ranking, problem.initial)]
     take = np.zeros(len(rest), dtype=bool)
@@ -193,27 +199,33 @@ def _pick(problem, ranking):
     for c, need in problem.deficits(problem.initial).items():
         take[np.flatnonzero(labels == c)[:need]] = True
     free = problem.k - len(problem.initial) - int(take.sum())
+    beyond = take & (np.arange(len(rest)) >= problem.k - len(problem.initial))
     take[np.flatnonzero(~take)[:free]] = True
-    return np.concatenate([problem.initial, rest[take]]).astype(np.int64)
+    order = np.concatenate([problem.initial, rest[take]]).astype(np.int64)
+    quota = len(problem.initial) + np.flatnonzero(beyond[take])
+    return Choice(order, reasons(len(order), len(problem.initial), quota=quota), None, info)
 
 
-def _by_score(problem, score):
+def _by_score(problem, score, info=None):
     """Pool nodes by decreasing ``score`` (aligned with ``pool``), ties to the lower index."""
-    return _pick(problem, problem.pool[np.argsort(-score, kind="stable")])
+    return _pick(problem, problem.pool[np.argsort(-score, kind="stable")], info)
 
 
 def _with_quotas(problem, outcome, pool_targets):
     """Meet the quotas after a greedy run (see the module docstring).
 
-    Returns (order, outcome or None, info); the outcome covers the report's targets.
+    Returns (order, reason, outcome or None, info); the outcome covers the report's targets.
     """
     order = problem.pool[outcome.order]
+    filled = outcome.stats.get("filled", 0)
+    reason = reasons(len(order), len(problem.initial), fill=np.arange(len(order) - filled, len(order)))
     short = problem.deficits(order)
     if not short:
-        return order, (None if pool_targets else outcome), {}
+        return order, reason, (None if pool_targets else outcome), {}
     dropped = 0
     if problem.radius is None:
-        order, dropped = _drop_surplus(problem, order, sum(short.values()))
+        keep, dropped = _drop_surplus(problem, order, sum(short.values()))
+        order, reason = order[keep], reason[keep]
     covered = None
     if not pool_targets:  # measure the kept picks once; each class's run then starts from them
         covered = (outcome.dist, outcome.assign) if dropped == 0 else cover(
@@ -226,14 +238,16 @@ def _with_quotas(problem, outcome, pool_targets):
                          initial=np.arange(len(order)), pool_targets=pool_targets,
                          seed=problem.seed, desc=f"quota {c}",
                          allowed=np.arange(len(order), len(offer)), covered=covered)
+        reason = np.concatenate([reason, np.full(len(outcome.order) - len(order), QUOTA, dtype=object)])
         order = offer[outcome.order]
         covered = None if pool_targets else (outcome.dist, outcome.assign)
     info = {"quota_swaps": {"dropped": dropped, "added": {str(c): n for c, n in short.items()}}}
-    return order, (None if pool_targets else outcome), info
+    return order, reason, (None if pool_targets else outcome), info
 
 
 def _drop_surplus(problem, order, count):
-    """Drop the ``count`` latest picks that are neither included nor needed by a quota."""
+    """Which picks to keep (bool (len(order),)) once the ``count`` latest picks that are neither
+    included nor needed by a quota are dropped, and how many were dropped."""
     have = Counter(problem.label[order].tolist())
     keep = np.ones(len(order), dtype=bool)
     dropped = 0
@@ -245,27 +259,38 @@ def _drop_surplus(problem, order, count):
             keep[i] = False
             have[c] -= 1
             dropped += 1
-    return order[keep], dropped
+    return keep, dropped
 
 
 def kcenter(problem):
     """k-supplier greedy: targets are the target nodes, candidates the pool (3-approximation).
 
-    In radius mode, the shortest greedy prefix whose radius is at most ``problem.radius``.
+    In radius mode, the shortest greedy prefix whose radius is at most ``problem.radius`` (with
+    ``problem.cover``: that brings that share of the targets within it).
     """
     radius_mode = problem.radius is not None
     outcome = greedy(problem.target_source, problem.pool_rows,
                      len(problem.pool) if radius_mode else problem.k,
                      initial=problem.pool_positions(problem.initial), seed=problem.seed,
-                     radius=problem.radius)
-    if radius_mode and outcome.dist.max() > problem.radius:
-        best = outcome.dist.max()
-        # Rounded up, so that the value suggested does work.
-        text = f"{best:.6g}" if float(f"{best:.6g}") >= best else f"{best * (1 + 1e-5):.6g}"
-        raise InputError(f"--radius {problem.radius}: cannot be reached even with the whole pool "
-                         f"({len(problem.pool)} candidates); use --radius {text} or more")
-    order, covering, info = _with_quotas(problem, outcome, pool_targets=False)
-    return Choice(order, covering, {**info, "greedy": outcome.stats})
+                     radius=problem.radius, cover=problem.cover)
+    if radius_mode:
+        _check_reached(problem, outcome.dist)
+    order, reason, covering, info = _with_quotas(problem, outcome, pool_targets=False)
+    return Choice(order, reason, covering, {**info, "greedy": outcome.stats})
+
+
+def _check_reached(problem, dist):
+    """Refuse a radius that the whole pool leaves short of the share asked, naming the
+    smallest radius that would work (rounded up, so that the value suggested does work)."""
+    share = 1.0 if problem.cover is None else problem.cover
+    need = math.ceil(round(share * len(dist), 9))
+    best = float(np.sort(dist)[need - 1])
+    if best <= problem.radius:
+        return
+    text = f"{best:.6g}" if float(f"{best:.6g}") >= best else f"{best * (1 + 1e-5):.6g}"
+    asked = "" if problem.cover is None else f" --cover {problem.cover:g}"
+    raise InputError(f"--radius {problem.radius}{asked}: cannot be reached even with the whole pool "
+                     f"({len(problem.pool)} candidates); use --radius {text} or more")
 
 
 def kmedian(problem):
@@ -280,7 +305,15 @@ def kmedian(problem):
     klass, deficit = problem.class_deficits()
     order, facts = facility_greedy(lists, start, np.setdiff1d(np.arange(len(problem.pool)), start),
                                    klass, deficit, problem.k - len(start))
-    return Choice(problem.pool[order], None, {"kmedian": facts})
+    return Choice(problem.pool[order], _forced_reasons(order, len(start), klass, deficit), None,
+                  {"kmedian": facts})
+
+
+def _forced_reasons(order, included, klass, deficit):
+    """Reasons of a greedy that meets the quotas as it picks (``kmedian``, ``kmeans``): a pick
+    made in its quota-forced mode is a quota pick. order : pool positions, included first."""
+    quota = included + np.flatnonzero(forced(klass[order[included:]], deficit))
+    return reasons(len(order), included, quota=quota)
 
 
 def kmeans(problem):
@@ -289,7 +322,8 @@ def kmeans(problem):
     targets, width = len(problem.targets), problem.pool_rows.shape[1]
     picks = problem.k - len(problem.initial)
     if picks == 0:
-        return Choice(problem.initial.copy(), None, {"kmeans": {"clusters": 0}})
+        return Choice(problem.initial.copy(), reasons(len(problem.initial), len(problem.initial)),
+                      None, {"kmeans": {"clusters": 0}})
     count = min(picks, targets)
     chunk = rows_per_chunk(problem.rule_bytes // 4, 4 * width + 8, at_least=256)
     centroids, sizes = clusters(problem.read_targets, targets, count, width, problem.seed,
@@ -298,7 +332,8 @@ def kmeans(problem):
     klass, deficit = problem.class_deficits()
     order = serve(problem.pool_rows, centroids, sizes, problem.pool_positions(problem.initial),
                   klass, deficit, picks)
-    return Choice(problem.pool[order], None, {"kmeans": {
+    reason = _forced_reasons(order, len(problem.initial), klass, deficit)
+    return Choice(problem.pool[order], reason, None, {"kmeans": {
         "clusters": int(count), "largest": int(sizes.max()), "empty": int(np.sum(sizes == 0))}})
 
 
@@ -309,14 +344,14 @@ def kcenter_pool(problem):
         start = np.random.default_rng(problem.seed).integers(len(problem.pool), size=1)
     outcome = greedy(None, problem.pool_rows, problem.k, initial=start, pool_targets=True,
                      seed=problem.seed, desc="kcenter-pool")
-    order, _, info = _with_quotas(problem, outcome, pool_targets=True)
-    return Choice(order, None, info)
+    order, reason, _, info = _with_quotas(problem, outcome, pool_targets=True)
+    return Choice(order, reason, None, info)
 
 
 def random(problem):
     """A uniform random sample of the pool (seeded)."""
     rest = np.setdiff1d(problem.pool, problem.initial, assume_unique=True)
-    return Choice(_pick(problem, np.random.default_rng(problem.seed).permutation(rest)))
+    return _pick(problem, np.random.default_rng(problem.seed).permutation(rest))
 
 
 def stratified(problem):
@@ -330,35 +365,42 @@ def stratified(problem):
     rest_label = problem.label[rest]
     drawn = [rng.permutation(rest[rest_label == c])[:n - included[c]]
              for c, n in zip(classes.tolist(), counts.tolist())]
-    order = np.concatenate([problem.initial, rng.permutation(np.concatenate(drawn))])
-    return Choice(order.astype(np.int64), None, {"class_targets": {
+    # a class's picks beyond its share without the quotas are quota picks (its last drawn)
+    share = largest_remainder(problem.k, sizes, [included[c] for c in classes.tolist()])
+    raised = np.concatenate([np.arange(len(d)) >= len(d) - max(0, n - s)
+                             for d, n, s in zip(drawn, counts.tolist(), share.tolist())])
+    mixed = rng.permutation(len(raised))  # the same shuffle as permuting the nodes themselves
+    order = np.concatenate([problem.initial, np.concatenate(drawn)[mixed]])
+    quota = len(problem.initial) + np.flatnonzero(raised[mixed])
+    return Choice(order.astype(np.int64), reasons(len(order), len(problem.initial), quota=quota),
+                  None, {"class_targets": {
         str(c): int(n) for c, n in zip(classes.tolist(), counts.tolist())}})
 
 
 def degree(problem):
     """Highest degree (number of neighbours) first."""
     indptr = problem.store.load("graph", "indptr", mmap=False)
-    return Choice(_by_score(problem, np.diff(indptr)[problem.pool]))
+    return _by_score(problem, np.diff(indptr)[problem.pool])
 
 
 def pagerank(problem):
     """Highest PageRank first."""
     rank = problem.store.load("propagate", "pagerank", mmap=False)
-    return Choice(_by_score(problem, rank[problem.pool]))
+    return _by_score(problem, rank[problem.pool])
 
 
 def entropy(problem):
     """Highest predictive entropy of the proxy model trained on the pool first."""
     score, info = entropy_scores(problem.pool_rows, problem.pool_label, l2=problem.proxy_l2["l2"],
                                  chunk_rows=problem.proxy_rows)
-    return Choice(_by_score(problem, score), None, {"hardness": {**info, "l2": problem.proxy_l2}})
+    return _by_score(problem, score, {"hardness": {**info, "l2": problem.proxy_l2}})
 
 
 def el2n(problem):
     """Highest EL2N score (Paul et al., 2021) first: mean early error norm over random starts."""
     score, info = el2n_scores(problem.pool_rows, problem.pool_label, seed=problem.seed,
                               l2=problem.proxy_l2["l2"], chunk_rows=problem.proxy_rows)
-    return Choice(_by_score(problem, score), None, {"hardness": {**info, "l2": problem.proxy_l2}})
+    return _by_score(problem, score, {"hardness": {**info, "l2": problem.proxy_l2}})
 
 
 def age(problem):
@@ -366,7 +408,7 @@ def age(problem):
     rank = problem.store.load("propagate", "pagerank", mmap=False)
     score, info = age_scores(problem.pool_rows, problem.pool_label, rank[problem.pool], problem.k,
                              seed=problem.seed, l2=problem.proxy_l2["l2"], chunk_rows=problem.proxy_rows)
-    return Choice(_by_score(problem, score), None, {"hardness": {**info, "l2": problem.proxy_l2}})
+    return _by_score(problem, score, {"hardness": {**info, "l2": problem.proxy_l2}})
 
 
 STRATEGIES = {

@@ -192,6 +192,20 @@ class TargetGroups:
                 return float(self.top_all[g])
             self._refresh(g)
 
+    def count_within(self, r):
+        """How many targets lie within ``r`` of the centres so far (exact: a group whose
+        stale maximum exceeds ``r`` is brought up to date first)."""
+        total = 0
+        for g in range(len(self.seen)):
+            lo, hi = self.offsets[g], self.offsets[g + 1]
+            if self.top_all[g] <= r:  # an upper bound: distances only fall
+                total += int(hi - lo)
+                continue
+            if self.seen[g] < self.count:
+                self._refresh(g)
+            total += int(np.count_nonzero(self.dist[lo:hi] <= r))
+        return total
+
     def start_from(self, dist, assign):
         """Targets start at ``dist`` / ``assign`` ((m,), caller's order), not infinity."""
         self.dist[:] = dist[self.order]

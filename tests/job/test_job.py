@@ -46,3 +46,12 @@ def test_radius_and_quota_options_from_the_job_file(data):
     assert main(["run", str(job), "--quiet"]) == 0
     labels = pq.read_table(data / "picks/r.parquet").column("label").to_pylist()
     assert len(labels) == 36 and min(labels.count(c) for c in set(labels)) >= 3 and len(set(labels)) == 12
+
+
+def test_cover_from_the_job_file(data):
+    job = write_job(data, 'strategy = "kcenter"\nradius = 1e9\ncover = 0.5\nout = "picks/c.parquet"')
+    assert main(["run", str(job), "--quiet"]) == 0
+    report = json.loads((data / "picks/c.json").read_text())
+    # reference: the job file's entries as written above; one node brings every target within 1e9
+    assert report["constraints"]["radius"] == 1e9 and report["constraints"]["cover"] == 0.5
+    assert report["selected"] == 1 and report["coverage"]["within"]["asked"] == 1.0

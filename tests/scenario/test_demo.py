@@ -19,8 +19,11 @@ def demo_run(tmp_path_factory):
 def test_demo_writes_every_selection_with_its_report(demo_run):
     for strategy in DEMO_STRATEGIES:
         table = pq.read_table(demo_run / "selections" / f"{strategy}.parquet")
-        assert table.column_names == ["node_id", "rank", "label"]
+        assert table.column_names == ["node_id", "rank", "label", "reason", "serves"]
         report = json.loads((demo_run / "selections" / f"{strategy}.json").read_text())
+        # each target is served by exactly one pick, its nearest (the report's definition)
+        assert sum(table.column("serves").to_pylist()) == report["targets"]
+        assert set(table.column("reason").to_pylist()) <= {"rule", "fill"}  # no include, no quota
         assert report["selected"] == table.num_rows == round(0.02 * report["pool"])
         assert "per-class" in report["caution"]
 

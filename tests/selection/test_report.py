@@ -82,7 +82,10 @@ def test_report_coverage_matches_cdist(small_store, strategy, quota):
     nearest = d.min(1)
     expected = {"radius": nearest.max(), "mean": nearest.mean(), "p50": np.quantile(nearest, 0.5),
                 "p90": np.quantile(nearest, 0.9), "p99": np.quantile(nearest, 0.99)}
+    within = result["coverage"].pop("within")
     assert result["coverage"] == pytest.approx(expected, rel=1e-9)
+    assert within == {name: pytest.approx(np.mean(nearest <= expected[name]), abs=1e-12)
+                      for name in ("radius", "p90", "p99")}
     load = np.bincount(d.argmin(1), minlength=14)
     assert result["load"] == {"max": int(load.max()), "mean": pytest.approx(load.mean())}
     labels = store.load("graph", "label")[result["indices"]]

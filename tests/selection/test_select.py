@@ -156,7 +156,7 @@ def test_output_files_and_columns(store, tmp_path):
     out = tmp_path / "picked.parquet"
     result = run(store, "kcenter", 15, out=out)
     table = pq.read_table(out)
-    assert table.column_names == ["node_id", "rank", "label"]
+    assert table.column_names == ["node_id", "rank", "label", "reason", "serves"]
     assert str(table.schema.field("rank").type) == "int64"
     assert str(table.schema.field("label").type) == "int64"
     picked = result["indices"]
@@ -566,3 +566,82 @@ def test_refuses_when_even_targets_on_disk_do_not_fit(skewed, monkeypatch, capsy
     assert ("--memory-budget 2.0 GiB is too small for select --strategy kcenter with 100 targets, "
             "even with their rows kept on disk: use at least 3.4 GiB") in err
     assert not run(skewed, "kcenter", 5, memory_budget="3.4GiB")["targets_in_memory"]
+
+
+def plain_cover_greedy(targets, pool, radius, share):
+    """The k-supplier greedy in plain numpy (farthest active target, its nearest pool node; a
+    target whose nearest node is already chosen is set aside), stopped at the shortest prefix
+    that brings ``share`` of the targets within ``radius``."""
+    d = cdist(targets, pool)
+    dist, active, order = np.full(len(targets), np.inf), np.ones(len(targets), bool), []
+    while np.mean(dist <= radius) < share:
+        t = int(np.argmax(np.where(active, dist, -1.0)))
+        c = int(np.argmin(d[t]))
+        active[t] = False
+        if c not in order:
+            order.append(c)
+            dist = np.minimum(dist, d[:, c])
+    return order
+
+
+@pytest.mark.parametrize("share", [0.5, 0.9, "95%"])
+def test_cover_mode_is_the_shortest_greedy_prefix_reaching_the_share(skewed, share):
+    split = skewed.load("graph", "split")
+    pool, targets = np.flatnonzero(split == 1), np.flatnonzero(split == 3)
+    rows = skewed.load("propagate", "hop_1").astype(np.float64)
+    everyone = cdist(rows[targets], rows[pool]).min(1)
+    radius = float(np.quantile(everyone, 0.5)) * 2  # reachable for any share with the whole pool
+    result = run(skewed, "kcenter", None, radius=radius, cover=share)
+    wanted = 0.95 if share == "95%" else share
+    # reference: the same greedy in plain numpy on scipy cdist distances
+    expected = pool[plain_cover_greedy(rows[targets], rows[pool], radius, wanted)]
+    np.testing.assert_array_equal(result["indices"], expected)
+    d = cdist(rows[targets], rows[result["indices"]]).min(1)
+    assert np.mean(d <= radius) >= wanted > np.mean(cdist(rows[targets], rows[expected[:-1]]).min(1) <= radius)
+    assert result["constraints"]["cover"] == wanted
+    assert result["coverage"]["within"]["asked"] == pytest.approx(np.mean(d <= radius), abs=1e-12)
+
+
+def test_cover_share_the_whole_pool_cannot_reach_names_the_radius_that_would(skewed):
+    split = skewed.load("graph", "split")
+    rows = skewed.load("propagate", "hop_1").astype(np.float64)
+    # reference: cdist from every target to the whole pool; the 90% share needs the distance
+    # of the 90th target in sorted order
+    best = np.sort(cdist(rows[split == 3], rows[split == 1]).min(1))[89]
+    with pytest.raises(InputError) as err:
+        run(skewed, "kcenter", None, radius=best * 0.99, cover=0.9)
+    assert str(err.value).startswith(f"--radius {best * 0.99} --cover 0.9: cannot be reached even "
+                                     f"with the whole pool (140 candidates); use --radius ")
+    suggested = float(str(err.value).split("use --radius ")[1].split()[0])
+    assert best <= suggested <= best * (1 + 2e-5)
+    run(skewed, "kcenter", None, radius=suggested, cover=0.9)
+
+
+@pytest.mark.parametrize("cover, message", [
+    ("1.5", "--cover 1.5: use a share of the targets in (0, 1], e.g. 0.95 or 95%"),
+    ("0", "--cover 0: use a share of the targets in (0, 1], e.g. 0.95 or 95%"),
+    ("most", "--cover most: use a share of the targets in (0, 1], e.g. 0.95 or 95%"),
+])
+def test_cover_errors(skewed, cover, message):
+    with pytest.raises(InputError) as err:
+        run(skewed, "kcenter", None, radius=1.0, cover=cover)
+    assert str(err.value) == message
+    with pytest.raises(InputError) as err:
+        run(skewed, "kcenter", 10, cover="0.9")
+    assert str(err.value) == ("--cover 0.9: goes with --radius (the share of targets to bring "
+                              "within it); give --radius R too")
+
+
+@pytest.mark.parametrize("strategy, budget", [("kcenter", 10), ("random", 25)])
+def test_coverage_gives_the_share_within_radius_p90_and_p99(skewed, strategy, budget):
+    split = skewed.load("graph", "split")
+    rows = skewed.load("propagate", "hop_1").astype(np.float64)
+    result = run(skewed, strategy, budget)
+    # reference: numpy quantiles and shares of scipy cdist distances to the nearest pick
+    d = cdist(rows[split == 3], rows[result["indices"]]).min(1)
+    cover = result["coverage"]
+    assert cover["radius"] == pytest.approx(d.max(), rel=1e-9)
+    for name, q in (("p50", 0.5), ("p90", 0.9), ("p99", 0.99)):
+        assert cover[name] == pytest.approx(np.quantile(d, q), rel=1e-9)
+    assert cover["within"] == {"radius": 1.0, "p90": pytest.approx(np.mean(d <= np.quantile(d, 0.9))),
+                               "p99": pytest.approx(np.mean(d <= np.quantile(d, 0.99)))}
