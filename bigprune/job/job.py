@@ -11,7 +11,7 @@ from pathlib import Path
 from .config import load_job
 from ..common.errors import BigpruneError, InputError
 from ..common.fingerprint import fingerprints, key
-from ..common.memory import peak_rss
+from ..common.memory import format_size, peak_rss
 from ..common.sources import edge_files
 from ..common.store import Store
 
@@ -110,6 +110,7 @@ def run_job(path, dry_run=False, echo=print):
     from ..propagation.propagate import propagate
 
     opts = {"memory_budget": job["memory_budget"], "threads": job["threads"]}
+    began = time.time()
     log = Path(job["log"]) if job["log"] else Path(job["store"]).parent / "bigprune-log.jsonl"
     with store.locked():
         steps = plan_job(job)
@@ -141,7 +142,15 @@ def run_job(path, dry_run=False, echo=print):
                 raise
             _log(log, step, "done", started, _rows(result))
             step["result"] = result
+    echo(_summary_line(steps, time.time() - began))
     return steps
+
+
+def _summary_line(steps, seconds):
+    """The job's closing line: steps run and skipped, wall time, the process's peak memory."""
+    ran = sum(step["run"] for step in steps)
+    return (f"done: {ran} step(s) run, {len(steps) - ran} skipped, {seconds:.1f} s, "
+            f"peak memory {format_size(peak_rss())}")
 
 
 def _run_select(store, entry, opts):
