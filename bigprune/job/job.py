@@ -33,6 +33,8 @@ def plan_job(job):
         why = "the store has no graph yet"
     elif graph["params"].get("drop_unknown") != ingest["drop_unknown"]:
         why = "drop_unknown changed"
+    elif _renamed_params(graph["params"]) != _column_params(ingest):
+        why = "input column names changed"
     elif _comparable(graph.get("inputs")) != _comparable(inputs):
         why = _what_changed(graph.get("inputs", {}), inputs)
     else:
@@ -125,7 +127,7 @@ def run_job(path, dry_run=False, echo=print):
                 if step["stage"] == "ingest":
                     ing = job["ingest"]
                     result = ingest(ing["edges"], ing["nodes"], store, features=ing["features"],
-                                    drop_unknown=ing["drop_unknown"], **opts)
+                                    drop_unknown=ing["drop_unknown"], columns=input_columns(ing), **opts)
                 elif step["stage"] == "propagate":
                     result = propagate(store, **job["propagate"], **opts)
                 elif step["stage"].startswith("study"):
@@ -182,6 +184,22 @@ def _run_study(store, step, opts):
     return {"cells_run": result["cells"]["run"], "best": result["recommendation"]["best"]}
 
 
+def input_columns(ingest):
+    """The [ingest] table's column names (``src_col`` ...) as ingest's ``columns``."""
+    from ..ingestion.columns import columns
+
+    return columns(ingest["src_col"], ingest["dst_col"], ingest["id_col"], ingest["label_col"],
+                   ingest["features_col"])
+
+
+def _column_params(ingest):
+    return {f"{field}_col": name for field, name in input_columns(ingest).renamed().items()}
+
+
+def _renamed_params(params):
+    return {k: v for k, v in params.items() if k.endswith("_col")}
+
+
 def _rows(result):
     keys = ("nodes", "undirected_edges", "selected", "targets", "hops", "changed", "cells_run", "best")
     return {k: result[k] for k in keys if isinstance(result, dict) and k in result}
@@ -224,8 +242,9 @@ def check_job(path, echo=print):
     ingest = job["ingest"]
     if not Path(ingest["nodes"]).is_file():
         raise InputError(f"--nodes {ingest['nodes']}: no such file")
-    table = NodeTable(ingest["nodes"], needs_features=ingest["features"] is None).load()
-    edges = EdgeFiles(edge_files(ingest["edges"]), table.id_kind)
+    names = input_columns(ingest)
+    table = NodeTable(ingest["nodes"], needs_features=ingest["features"] is None, columns=names).load()
+    edges = EdgeFiles(edge_files(ingest["edges"]), table.id_kind, names.src, names.dst)
     from ..selection.strategies import STRATEGIES
 
     for entry in job["select"]:
