@@ -75,7 +75,8 @@ def propagate(store, hops=2, norm="sym", memory_budget=DEFAULT_BUDGET, threads=N
                          f"{MAX_RESTRICTED_HOPS}, or --no-restrict")
     budget = parse_size(memory_budget)
     threads = set_threads(threads)
-    return _propagate(store, hops, norm, budget, threads, dtype, bool(restrict))
+    with store.locked():  # a writer, as ingest: a second run (or a job) on the store exits 4
+        return _propagate(store, hops, norm, budget, threads, dtype, bool(restrict))
 
 
 def embedding(store, hop=None):
