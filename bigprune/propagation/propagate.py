@@ -75,6 +75,7 @@ def propagate(store, hops=2, norm="sym", memory_budget=DEFAULT_BUDGET, threads=N
                          f"{MAX_RESTRICTED_HOPS}, or --no-restrict")
     budget = parse_size(memory_budget)
     threads = set_threads(threads)
+    store.entry("graph")  # no store or no graph: say so before the lock would create the folder
     with store.locked():  # a writer, as ingest: a second run (or a job) on the store exits 4
         return _propagate(store, hops, norm, budget, threads, dtype, bool(restrict))
 
