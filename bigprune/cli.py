@@ -104,6 +104,13 @@ def _parser():
     p.add_argument("--store", required=True, metavar="DIR", help="store directory (created if missing)")
     p.add_argument("--drop-unknown", action="store_true",
                    help="drop edge rows naming nodes missing from --nodes (counted) instead of refusing")
+    for flag, default, what in (("--src-col", "src", "--edges column of one endpoint"),
+                                ("--dst-col", "dst", "--edges column of the other endpoint"),
+                                ("--id-col", "node_id", "--nodes column of the node ids"),
+                                ("--label-col", "label", "--nodes column of the labels: int64 class ids, "
+                                 "or class names (strings, numbered in sorted order)"),
+                                ("--features-col", "features", "--nodes column of the feature lists")):
+        p.add_argument(flag, default=None, metavar="NAME", help=f"{what} (default {default})")
 
     p = sub.add_parser("propagate", parents=[common], formatter_class=fmt, epilog=EXAMPLES["propagate"],
                        help="smooth features over the graph (SGC hops) and compute PageRank")
@@ -250,8 +257,11 @@ def _run(args, emit):
     if args.command == "ingest":
         from .ingestion.ingest import ingest
 
+        from .ingestion.columns import columns
+
+        names = columns(args.src_col, args.dst_col, args.id_col, args.label_col, args.features_col)
         return ingest(args.edges, args.nodes, args.store, features=args.features,
-                      drop_unknown=args.drop_unknown, **opts)
+                      drop_unknown=args.drop_unknown, columns=names, **opts)
     if args.command == "propagate":
         from .propagation.propagate import propagate
 

@@ -147,9 +147,9 @@ def _float_node_ids(r):
     return {}, [str(nodes_file(r)), "column 'node_id' has type double"]
 
 
-def _string_labels(r):
-    rewrite(nodes_file(r), label=pc.cast(column(nodes_file(r), "label"), pa.string()))
-    return {}, [str(nodes_file(r)), "column 'label' has type string"]
+def _float_labels(r):  # string labels are class names now (tests/ingestion/test_columns.py)
+    rewrite(nodes_file(r), label=pc.cast(column(nodes_file(r), "label"), pa.float64()))
+    return {}, [str(nodes_file(r)), "column 'label' has type double", "class names (strings)"]
 
 
 def _integer_split(r):
@@ -393,7 +393,7 @@ INGEST_CASES = {
     "nodes: column node_id renamed": _missing_node_id,
     "edges: columns named source/dst": _edges_wrong_names,
     "nodes: float ids": _float_node_ids,
-    "nodes: string labels": _string_labels,
+    "nodes: float labels": _float_labels,
     "nodes: integer split": _integer_split,
     "nodes: string features": _string_features,
     "edges: string weights": _string_weights,

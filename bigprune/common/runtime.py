@@ -1,5 +1,7 @@
 """Process-wide settings a stage applies once: thread counts and progress bars."""
+import os
 import sys
+import time
 
 from .errors import InputError
 from .memory import available_threads
@@ -48,10 +50,62 @@ class _Silent:
         return False
 
 
+class _Lines(_Silent):
+    """For a log: one plain line on stderr when the loop finishes (``desc: N units in S s``)."""
+
+    def __init__(self, desc, unit):
+        self.desc, self.unit, self.n, self.started = desc, unit, 0, time.perf_counter()
+
+    def update(self, n=1):
+        self.n += n
+
+    def __exit__(self, exc_type, *exc):
+        if exc_type is None:
+            print(f"{self.desc}: {self.n:,.0f} {self.unit}(s) in {time.perf_counter() - self.started:.1f} s",
+                  file=sys.stderr, flush=True)
+        return False
+
+
+class _Nested:
+    """Counts the bars open in this process: only the outermost one writes plain lines or stays."""
+
+    depth = 0
+
+    def __init__(self, bar):
+        self.bar = bar
+
+    def __enter__(self):
+        _Nested.depth += 1
+        return self.bar.__enter__()
+
+    def __exit__(self, *exc):
+        _Nested.depth -= 1
+        return self.bar.__exit__(*exc)
+
+
+def _columns(stream):
+    """The terminal's width, or 0 when it reports none (a pseudo-terminal never sized)."""
+    try:
+        return os.get_terminal_size(stream.fileno()).columns
+    except (OSError, ValueError, AttributeError):
+        return 0
+
+
 def progress(total=None, desc="", unit="it"):
-    """A tqdm bar on a terminal; a do-nothing bar under ``--quiet`` or when stderr is a log."""
-    if _QUIET["value"] or not sys.stderr.isatty():
+    """Progress of one loop, used as a context manager.
+
+    On a terminal: a tqdm bar (80 x 24 when the terminal reports no size: tqdm reads 0 x 0 as
+    no room and draws nothing, which left every stage silent); the outermost bar stays, nested ones vanish when done. When stderr is a log:
+    one plain line as the outermost loop finishes. Under ``--quiet``: nothing.
+    """
+    outer = _Nested.depth == 0
+    if _QUIET["value"]:
         return _Silent()
+    if not sys.stderr.isatty():
+        return _Nested(_Lines(desc, unit) if outer else _Silent())
     from tqdm import tqdm
 
-    return tqdm(total=total, desc=desc, unit=unit, unit_scale=True, leave=False, dynamic_ncols=True)
+    sized = _columns(sys.stderr) > 0
+    bar = tqdm(total=total, desc=desc, unit=unit, unit_scale=True, leave=outer, file=sys.stderr,
+               dynamic_ncols=sized, ncols=None if sized else 80, nrows=None if sized else 24)
+    return _Nested(bar)

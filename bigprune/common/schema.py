@@ -6,6 +6,8 @@ Graph stage (``bigprune ingest``), row ``i`` of every array is the node with den
 - ``node_id.parquet``: one column ``node_id`` holding the user's ids (int64 or string);
 - ``split.npy`` (int8): one of the codes in ``SPLIT_CODES``, ``NO_SPLIT`` for null;
 - ``label.npy`` (int64): the class label, ``NO_LABEL`` where unknown;
+- ``classes.parquet``: present only when the labels were strings: ``label`` (the class id given
+  to each name, in sorted name order) and ``name``;
 - ``indptr.npy`` (int64, n + 1) and ``indices.npy`` (int32 or int64): the symmetric adjacency
   in CSR form, rows sorted, no self loops, no repeated edges;
 - ``weight.npy`` (float32, nnz): edge weights, present only when the edges had a weight column;

@@ -17,21 +17,23 @@ from ..common.sources import first_damaged, id_kind, is_numeric, open_parquet
 class EdgeFiles:
     """The checked ``--edges`` partitions: same columns and id type in every file."""
 
-    def __init__(self, files, node_id_kind):
+    def __init__(self, files, node_id_kind, src="src", dst="dst"):
         self.files = files
+        self.src, self.dst = src, dst
         self.rows = 0
         self.weighted = None
         for path in files:
             meta = open_parquet(path, "--edges")
             schema = meta.schema_arrow
-            for column in ("src", "dst"):
+            for column in (src, dst):
                 if column not in schema.names:
                     raise InputError(f"--edges {path}: missing column {column!r} "
-                                     f"(needs src, dst and optionally weight; has {', '.join(schema.names)})")
+                                     f"(needs {src}, {dst} and optionally weight; has {', '.join(schema.names)}; "
+                                     "--src-col and --dst-col name other columns)")
                 kind = id_kind(schema.field(column).type)
                 if kind != node_id_kind:
                     raise InputError(f"--edges {path}: column {column!r} has type {schema.field(column).type} "
-                                     f"but node_id in --nodes is {node_id_kind}; ids must have one type")
+                                     f"but the node ids in --nodes are {node_id_kind}; ids must have one type")
             has_weight = "weight" in schema.names
             if has_weight and not is_numeric(schema.field("weight").type):
                 raise InputError(f"--edges {path}: column 'weight' has type {schema.field('weight').type}; "
@@ -44,6 +46,10 @@ class EdgeFiles:
             if meta.metadata.num_rows == 0:
                 raise InputError(f"--edges {path}: the partition holds no rows; remove it or fill it")
             self.rows += meta.metadata.num_rows
+
+    def endpoints_sql(self):
+        """The two endpoint columns of the scan aliased ``e``, quoted for DuckDB."""
+        return tuple('e."' + name.replace('"', '""') + '"' for name in (self.src, self.dst))
 
     def sql_source(self):
         names = ", ".join("'" + str(p).replace("'", "''") + "'" for p in self.files)
@@ -58,8 +64,9 @@ def duckdb_rows(con, edges, index_dtype, batch_rows, drop_unknown=False):
     with ``drop_unknown``; a weight that is not finite and > 0 is an error.
     """
     weight_sql = "e.weight::FLOAT AS w" if edges.weighted else "NULL::FLOAT AS w"
+    src, dst = edges.endpoints_sql()
     query = (f"SELECT s.idx AS u, d.idx AS v, {weight_sql} FROM {edges.sql_source()} AS e "
-             "LEFT JOIN idmap AS s ON e.src = s.id LEFT JOIN idmap AS d ON e.dst = d.id")
+             f"LEFT JOIN idmap AS s ON {src} = s.id LEFT JOIN idmap AS d ON {dst} = d.id")
     no_weight = np.empty(0, dtype=np.float32)
     reader = con.sql(query).to_arrow_reader(batch_rows)
     for batch in reader:
@@ -118,13 +125,14 @@ def build_csr(batches, edges, node_count, index_dtype, writer, edge_bytes):
 
 def explain_unmapped(con, edges):
     """Find the first edge row whose src or dst is null or not in the node table, and say so."""
+    src_sql, dst_sql = edges.endpoints_sql()
     row = con.execute(
-        f"SELECT e.filename, e.file_row_number, e.src, e.dst, s.idx IS NULL AS bad_src "
-        f"FROM {edges.sql_source()} AS e LEFT JOIN idmap AS s ON e.src = s.id "
-        f"LEFT JOIN idmap AS d ON e.dst = d.id WHERE s.idx IS NULL OR d.idx IS NULL "
+        f"SELECT e.filename, e.file_row_number, {src_sql}, {dst_sql}, s.idx IS NULL AS bad_src "
+        f"FROM {edges.sql_source()} AS e LEFT JOIN idmap AS s ON {src_sql} = s.id "
+        f"LEFT JOIN idmap AS d ON {dst_sql} = d.id WHERE s.idx IS NULL OR d.idx IS NULL "
         f"ORDER BY e.filename, e.file_row_number LIMIT 1").fetchone()
     file, index, src, dst, bad_src = row
-    column, value = ("src", src) if bad_src else ("dst", dst)
+    column, value = (edges.src, src) if bad_src else (edges.dst, dst)
     if value is None:
         raise InputError(f"--edges {file}: column {column!r} is null at row {index}")
     raise InputError(f"--edges {file}: row {index} column {column!r} names node {value!r}, "
@@ -173,7 +181,7 @@ def scan_error(exc, edges, budget):
     if isinstance(exc, duckdb.OutOfMemoryException) or "Out of Memory Error" in str(exc):
         return BudgetError(f"--memory-budget {format_size(budget)}: DuckDB ran out of memory joining "
                            f"{edges.rows:,} edge rows; raise the budget")
-    columns = ["src", "dst"] + (["weight"] if edges.weighted else [])
+    columns = [edges.src, edges.dst] + (["weight"] if edges.weighted else [])
     return first_damaged(edges.files, columns, "--edges") or exc
 
 

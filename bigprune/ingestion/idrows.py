@@ -30,7 +30,7 @@ def streamed(path, metadata=None):
     return pq.ParquetFile(path, metadata=metadata, pre_buffer=False, buffer_size=READ_BUFFER)
 
 
-def hashable(node_id_type, edge_files, index_dtype):
+def hashable(node_id_type, edge_files, index_dtype, src="src", dst="dst"):
     """Whether the hash path applies: plain integer ids that fit int64 and int32 rows.
 
     uint64 ids above 2**63 would wrap when seen as int64, and dictionary columns would need
@@ -41,7 +41,7 @@ def hashable(node_id_type, edge_files, index_dtype):
     types = [node_id_type]
     for path in edge_files:
         schema = pq.read_schema(path)
-        types += [schema.field("src").type, schema.field("dst").type]
+        types += [schema.field(src).type, schema.field(dst).type]
     return all(pa.types.is_integer(t) and t != pa.uint64() for t in types)
 
 
@@ -74,7 +74,7 @@ def hashed_rows(edges, ids, batch_rows, drop_unknown, explain_unmapped, explain_
     ``explain_unmapped()`` raises). A weight that is not finite and > 0 calls
     ``explain_weight()``, which raises.
     """
-    columns = ["src", "dst"] + (["weight"] if edges.weighted else [])
+    columns = [edges.src, edges.dst] + (["weight"] if edges.weighted else [])
     no_weight = np.empty(0, dtype=np.float32)
     for path in edges.files:
         for batch in streamed(path).iter_batches(batch_size=batch_rows, columns=columns):

@@ -12,14 +12,16 @@ from .edges import EdgeFiles, build_csr, duckdb_rows, explain_unmapped, explain_
 from ..common.fingerprint import fingerprints
 from .idrows import hashable, hashed_rows, table_bytes
 from ..common.memory import DEFAULT_BUDGET, FIXED_OVERHEAD, MIB, format_size, parse_size, peak_rss, working_memory
+from .columns import Columns
 from .nodetable import NodeTable, copy_npy_features
+from ..common.classes import class_table
 from ..common.runtime import set_threads
 from ..common.sources import edge_files, regular_file
 from ..common.store import Store
 
 
 def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, threads=None,
-           drop_unknown=False):
+           drop_unknown=False, columns=Columns()):
     """Build the graph stage of ``store`` from Parquet edges and a node table.
 
     Parameters
@@ -40,6 +42,10 @@ def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, thr
         Threads for DuckDB and numba (default: all available cores).
     drop_unknown : bool
         Drop (and count) edge rows naming nodes missing from the node table instead of refusing.
+    columns : Columns
+        The input columns playing ``src``, ``dst``, ``node_id``, ``label`` and ``features``
+        (:func:`bigprune.ingestion.columns.columns`). String labels become class ids in sorted
+        name order; the names go to the graph stage's ``classes.parquet``.
 
     Returns
     -------
@@ -61,23 +67,26 @@ def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, thr
     regular_file(nodes, "--nodes")
     if features is not None:
         regular_file(features, "--features")
-    table = NodeTable(nodes, needs_features=features is None)
-    partitions = EdgeFiles(edge_files(edges), table.id_kind)
+    table = NodeTable(nodes, needs_features=features is None, columns=columns)
+    partitions = EdgeFiles(edge_files(edges), table.id_kind, columns.src, columns.dst)
     n = table.rows
     index_dtype = np.int32 if n < 2**31 - 1 else np.int64
-    hashed = hashable(table.file.schema_arrow.field("node_id").type, partitions.files, index_dtype)
+    hashed = hashable(table.file.schema_arrow.field(columns.node_id).type, partitions.files, index_dtype,
+                      columns.src, columns.dst)
     plan = _plan(budget, n, partitions.rows, table_bytes(n) if hashed else 0)
     table.load(hash_ids=hashed)
     inputs = {"edges": fingerprints(partitions.files), "nodes": fingerprints([nodes])}
     if features is not None:
         inputs["features"] = fingerprints([features])
     params = {"edges": str(edges), "nodes": str(nodes), "drop_unknown": bool(drop_unknown),
-              "features": None if features is None else str(features)}
+              "features": None if features is None else str(features), **_renamed(columns)}
     with store.locked(), store.begin("graph", params=params, inputs=inputs) as writer:
         # The node columns go to the store first so that only the id map stays for the edges.
         writer.write_table("node_id", pa.table({"node_id": table.id_array()}))
         writer.save("split", table.split)
         writer.save("label", table.label)
+        if table.class_names is not None:
+            writer.write_table("classes", class_table(table.class_names))
         table.split = table.label = None
         if features is None:
             dim = table.feature_dim()
@@ -117,6 +126,11 @@ def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, thr
         writer.info.update(summary)
     summary.update(seconds=round(time.time() - started, 3), peak_rss=peak_rss())
     return summary
+
+
+def _renamed(columns):
+    """The renamed input columns as stage parameters (none for the default names)."""
+    return {f"{field}_col": name for field, name in columns.renamed().items()}
 
 
 # Plans are made from the node table's metadata before any column is read. On the hash path

@@ -8,6 +8,7 @@ import pyarrow.compute as pc
 
 from ..common.arrayfile import NpyFile
 from ..common.errors import InputError
+from .columns import Columns
 from .idrows import IdTable, streamed
 from ..common.memory import MIB, chunk_ranges, rows_per_chunk
 from ..common.schema import NO_LABEL, NO_SPLIT, SPLIT_CODES
@@ -21,32 +22,48 @@ READ_ROWS = 1 << 20
 FEATURE_BATCH_BYTES = 32 * MIB
 
 
+# What names another column when the default one is missing.
+_RENAME_HINT = {"node_id": "--id-col NAME names another column",
+                "label": "--label-col NAME names another column",
+                "features": "--features-col NAME names another column, or give --features FILE.npy"}
+
+
 class NodeTable:
     """``--nodes``: its schema and row count on opening; ``load()`` reads and checks the columns
     ``ids`` (int ids: a numpy array of their own dtype; string ids: Arrow), ``split`` (int8) and
-    ``label`` (int64)."""
+    ``label`` (int64). String labels become class ids in sorted name order; ``class_names``
+    then lists the names (index = class id), else it is None."""
 
-    def __init__(self, path, needs_features):
+    def __init__(self, path, needs_features, columns=Columns()):
         self.path = path
+        self.names = columns
         self.file = open_parquet(path, "--nodes")
         schema = self.file.schema_arrow
-        wanted = ["node_id", "split", "label"] + (["features"] if needs_features else [])
-        missing = [c for c in wanted if c not in schema.names]
+        roles = ["node_id", "split", "label"] + (["features"] if needs_features else [])
+        wanted = [getattr(columns, role, role) for role in roles]
+        missing = [(role, c) for role, c in zip(roles, wanted) if c not in schema.names]
         if missing:
-            raise InputError(f"--nodes {path}: missing column {missing[0]!r} "
-                             f"(needs {', '.join(wanted)}; has {', '.join(schema.names)})")
-        self.id_kind = id_kind(schema.field("node_id").type)
+            role, name = missing[0]
+            hint = f"; {_RENAME_HINT[role]}" if role in _RENAME_HINT else ""
+            raise InputError(f"--nodes {path}: missing column {name!r} "
+                             f"(needs {', '.join(wanted)}; has {', '.join(schema.names)}{hint})")
+        self.id_kind = id_kind(schema.field(columns.node_id).type)
         if self.id_kind is None:
-            raise InputError(f"--nodes {path}: column 'node_id' has type {schema.field('node_id').type}; "
-                             "use int64 or string ids")
-        if not pa.types.is_integer(schema.field("label").type) and not pa.types.is_null(schema.field("label").type):
-            raise InputError(f"--nodes {path}: column 'label' has type {schema.field('label').type}; "
-                             "use int64 class ids (null where unknown)")
+            raise InputError(f"--nodes {path}: column {columns.node_id!r} has type "
+                             f"{schema.field(columns.node_id).type}; use int64 or string ids")
+        ltype = schema.field(columns.label).type
+        if pa.types.is_dictionary(ltype):
+            ltype = ltype.value_type
+        self.string_labels = pa.types.is_string(ltype) or pa.types.is_large_string(ltype)
+        if not (pa.types.is_integer(ltype) or pa.types.is_null(ltype) or self.string_labels):
+            raise InputError(f"--nodes {path}: column {columns.label!r} has type {ltype}; "
+                             "use int64 class ids or class names (strings), null where unknown")
+        self.class_names = None
         if needs_features:
-            ftype = schema.field("features").type
+            ftype = schema.field(columns.features).type
             if not (pa.types.is_list(ftype) or pa.types.is_large_list(ftype)
                     or pa.types.is_fixed_size_list(ftype)) or not is_numeric(ftype.value_type):
-                raise InputError(f"--nodes {path}: column 'features' has type {ftype}; "
+                raise InputError(f"--nodes {path}: column {columns.features!r} has type {ftype}; "
                                  "use a list of floats per node")
         self.rows = self.file.metadata.num_rows
         if self.rows == 0:
@@ -63,13 +80,15 @@ class NodeTable:
         self.split = np.empty(n, dtype=np.int8)
         self.label = np.empty(n, dtype=np.int64)
         ids, chunks, row = None, [], 0
-        for batch in self._batches(["node_id", "split", "label"], READ_ROWS):
+        if self.string_labels:
+            self.class_names = self._class_names()
+        for batch in self._batches([self.names.node_id, "split", self.names.label], READ_ROWS):
             column = batch.column(0)
             if pa.types.is_dictionary(column.type):
                 column = column.dictionary_decode()
             if column.null_count:
                 bad = int(np.flatnonzero(column.is_null().to_numpy(zero_copy_only=False))[0])
-                raise InputError(f"--nodes {self.path}: column 'node_id' is null at row {row + bad}")
+                raise InputError(f"--nodes {self.path}: column {self.names.node_id!r} is null at row {row + bad}")
             stop = row + len(batch)
             if self.id_kind == "int":  # one numpy array, filled in place: no second copy to concatenate
                 ids = np.empty(n, dtype=column.type.to_pandas_dtype()) if ids is None else ids
@@ -88,7 +107,8 @@ class NodeTable:
         else:
             repeated = self._repeated_id()
         if repeated is not None:
-            raise InputError(f"--nodes {self.path}: column 'node_id' repeats id {repeated!r}; ids must be unique")
+            raise InputError(f"--nodes {self.path}: column {self.names.node_id!r} repeats id {repeated!r}; "
+                             "ids must be unique")
         return self
 
     def id_array(self):
@@ -97,7 +117,7 @@ class NodeTable:
 
     def read_ids(self):
         """The ids read again (as Arrow) after ``load`` dropped them: only for error messages."""
-        return pa.chunked_array([b.column(0) for b in self._batches(["node_id"], READ_ROWS)]).combine_chunks()
+        return pa.chunked_array([b.column(0) for b in self._batches([self.names.node_id], READ_ROWS)]).combine_chunks()
 
     def _split_codes(self, column, first_row):
         if not (pa.types.is_string(column.type) or pa.types.is_large_string(column.type)
@@ -116,17 +136,32 @@ class NodeTable:
         lookup = np.array([SPLIT_CODES[name] for name in names] + [NO_SPLIT], dtype=np.int8)
         return lookup[encoded.indices.fill_null(len(names)).to_numpy(zero_copy_only=False)]
 
+    def _class_names(self):
+        """The distinct non-null label strings, sorted (class id = position): one pass over the column."""
+        seen = set()
+        for batch in self._batches([self.names.label], READ_ROWS):
+            column = batch.column(0)
+            if pa.types.is_dictionary(column.type):
+                column = column.dictionary_decode()
+            seen.update(pc.unique(column.drop_null()).to_pylist())
+        return sorted(seen)
+
     def _labels(self, column, split, first_row):
+        name = self.names.label
         mask = column.is_null().to_numpy(zero_copy_only=False)
+        if self.string_labels:
+            if pa.types.is_dictionary(column.type):
+                column = column.dictionary_decode()
+            column = pc.index_in(column.cast(pa.string()), value_set=pa.array(self.class_names, pa.string()))
         label = column.cast(pa.int64()).fill_null(NO_LABEL).to_numpy(zero_copy_only=False)
         needs = (split == SPLIT_CODES["train"]) | (split == SPLIT_CODES["valid"])
         unlabeled = np.flatnonzero(needs & mask)
         if unlabeled.size:
-            raise InputError(f"--nodes {self.path}: column 'label' is null at row {first_row + unlabeled[0]}, "
+            raise InputError(f"--nodes {self.path}: column {name!r} is null at row {first_row + unlabeled[0]}, "
                              "a train/valid row; every train and valid node needs a label")
         negative = np.flatnonzero(~mask & (label < 0))
         if negative.size:
-            raise InputError(f"--nodes {self.path}: column 'label' row {first_row + negative[0]} holds "
+            raise InputError(f"--nodes {self.path}: column {name!r} row {first_row + negative[0]} holds "
                              f"{label[negative[0]]}; labels are class ids >= 0")
         return np.where(mask, NO_LABEL, label)
 
@@ -137,7 +172,8 @@ class NodeTable:
         orphans = sorted(set(np.unique(valid).tolist()) - trained)
         if orphans:
             row = int(np.flatnonzero((split == SPLIT_CODES["valid"]) & (label == orphans[0]))[0])
-            raise InputError(f"--nodes {self.path}: class {orphans[0]} (row {row}, split valid) has no "
+            shown = orphans[0] if self.class_names is None else repr(self.class_names[orphans[0]])
+            raise InputError(f"--nodes {self.path}: class {shown} (row {row}, split valid) has no "
                              "train node; every class needs at least one train node")
 
     def _repeated_id(self):
@@ -158,27 +194,28 @@ class NodeTable:
         GIL): 2.0 s against 2.4 s for a 1 GB column, best of three, on two cores.
         """
         dim = out.shape[1]
-        ftype = self.file.schema_arrow.field("features").type
+        name = self.names.features
+        ftype = self.file.schema_arrow.field(name).type
         fixed = pa.types.is_fixed_size_list(ftype) and ftype.list_size == dim
         row = 0
         batch_rows = rows_per_chunk(min(chunk_bytes, FEATURE_BATCH_BYTES), 8 * dim, at_least=1024)
         with ThreadPoolExecutor(1) as writer:
             pending = None
-            for batch in self._batches(["features"], batch_rows):
+            for batch in self._batches([name], batch_rows):
                 column = batch.column(0)
                 if column.null_count:
                     bad = int(np.flatnonzero(column.is_null().to_numpy(zero_copy_only=False))[0])
-                    raise InputError(f"--nodes {self.path}: column 'features' is null at row {row + bad}")
+                    raise InputError(f"--nodes {self.path}: column {name!r} is null at row {row + bad}")
                 if not fixed:  # a fixed-size list of d values cannot be ragged
                     lengths = pc.list_value_length(column).to_numpy()
                     wrong = np.flatnonzero(lengths != dim)
                     if wrong.size:
-                        raise InputError(f"--nodes {self.path}: column 'features' row {row + wrong[0]} has "
+                        raise InputError(f"--nodes {self.path}: column {name!r} row {row + wrong[0]} has "
                                          f"{lengths[wrong[0]]} values, row 0 has {dim}; "
                                          "every row needs the same count")
                 values = pc.list_flatten(column).to_numpy(zero_copy_only=False)
                 block = values.astype(np.float32, copy=False).reshape(-1, dim)
-                _check_finite(block, row, f"--nodes {self.path}: column 'features'")
+                _check_finite(block, row, f"--nodes {self.path}: column {name!r}")
                 if pending is not None:
                     pending.result()  # one write in flight: two batches in memory at most
                 pending = writer.submit(out.__setitem__, slice(row, row + len(block)), block)
@@ -200,12 +237,13 @@ class NodeTable:
 
     def feature_dim(self):
         """The length of row 0's feature list."""
-        first = next(self._batches(["features"], 1)).column(0)
+        name = self.names.features
+        first = next(self._batches([name], 1)).column(0)
         if first.null_count:
-            raise InputError(f"--nodes {self.path}: column 'features' is null at row 0")
+            raise InputError(f"--nodes {self.path}: column {name!r} is null at row 0")
         dim = len(first[0].values)
         if dim == 0:
-            raise InputError(f"--nodes {self.path}: column 'features' row 0 is empty")
+            raise InputError(f"--nodes {self.path}: column {name!r} row 0 is empty")
         return dim
 
 

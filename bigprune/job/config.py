@@ -36,8 +36,10 @@ from ..common.options import Names, read_budget
 # key: (type, required, default); "path" values are resolved against the file's folder.
 TOP = {"store": ("path", True, None), "memory_budget": ("size", False, DEFAULT_BUDGET),
        "threads": ("int", False, None), "log": ("path", False, None)}
+# *_col: the input columns to read instead of src, dst, node_id, label and features (see --src-col).
 INGEST = {"edges": ("path", True, None), "nodes": ("path", True, None), "features": ("path", False, None),
-          "drop_unknown": ("bool", False, False)}
+          "drop_unknown": ("bool", False, False), "src_col": ("str", False, None), "dst_col": ("str", False, None),
+          "id_col": ("str", False, None), "label_col": ("str", False, None), "features_col": ("str", False, None)}
 PROPAGATE = {"hops": ("int", False, 2), "norm": ("str", False, "sym"), "dtype": ("str", False, "float32"),
              "restrict": ("bool", False, False)}
 # keep_previous: start from the selection already at ``out`` (last night's) as the include list.

@@ -11,7 +11,7 @@ from .config import load_job, select_names, study_names
 from ..common.errors import BigpruneError, InputError
 from ..common.fingerprint import fingerprints, key
 from ..common.jsonout import dumps
-from ..common.memory import peak_rss
+from ..common.memory import format_size, peak_rss
 from ..common.sources import edge_files
 from ..common.store import Store
 from ..common.faults import fault
@@ -34,6 +34,8 @@ def plan_job(job):
         why = "the store has no graph yet"
     elif graph["params"].get("drop_unknown") != ingest["drop_unknown"]:
         why = "drop_unknown changed"
+    elif _renamed_params(graph["params"]) != _column_params(ingest):
+        why = "input column names changed"
     elif _comparable(graph.get("inputs")) != _comparable(inputs):
         why = _what_changed(graph.get("inputs", {}), inputs)
     else:
@@ -111,6 +113,7 @@ def run_job(path, dry_run=False, echo=print):
     from ..propagation.propagate import propagate
 
     opts = {"memory_budget": job["memory_budget"], "threads": job["threads"]}
+    began = time.time()
     log = Path(job["log"]) if job["log"] else Path(job["store"]).parent / "bigprune-log.jsonl"
     with store.locked():
         steps = plan_job(job)
@@ -131,7 +134,7 @@ def run_job(path, dry_run=False, echo=print):
                 if step["stage"] == "ingest":
                     ing = job["ingest"]
                     result = ingest(ing["edges"], ing["nodes"], store, features=ing["features"],
-                                    drop_unknown=ing["drop_unknown"], **opts)
+                                    drop_unknown=ing["drop_unknown"], columns=input_columns(ing), **opts)
                 elif step["stage"] == "propagate":
                     result = propagate(store, **job["propagate"], **opts)
                 elif step["stage"].startswith("study"):
@@ -149,7 +152,15 @@ def run_job(path, dry_run=False, echo=print):
                 raise
             _log(log, step, "done", started, _rows(result))
             step["result"] = result
+    echo(_summary_line(steps, time.time() - began))
     return steps
+
+
+def _summary_line(steps, seconds):
+    """The job's closing line: steps run and skipped, wall time, the process's peak memory."""
+    ran = sum(step["run"] for step in steps)
+    return (f"done: {ran} step(s) run, {len(steps) - ran} skipped, {seconds:.1f} s, "
+            f"peak memory {format_size(peak_rss())}")
 
 
 def _run_select(store, entry, opts):
@@ -181,6 +192,22 @@ def _run_study(store, step, opts):
     store.record_output(Path(entry["out"]) / "study.json",
                         key(step["params"], store.entry("propagate")["dir"]))
     return {"cells_run": result["cells"]["run"], "best": result["recommendation"]["best"]}
+
+
+def input_columns(ingest):
+    """The [ingest] table's column names (``src_col`` ...) as ingest's ``columns``."""
+    from ..ingestion.columns import columns
+
+    return columns(ingest["src_col"], ingest["dst_col"], ingest["id_col"], ingest["label_col"],
+                   ingest["features_col"])
+
+
+def _column_params(ingest):
+    return {f"{field}_col": name for field, name in input_columns(ingest).renamed().items()}
+
+
+def _renamed_params(params):
+    return {k: v for k, v in params.items() if k.endswith("_col")}
 
 
 def _rows(result):
@@ -228,8 +255,9 @@ def check_job(path, echo=print):
     ingest = job["ingest"]
     if not Path(ingest["nodes"]).is_file():
         raise InputError(f"--nodes {ingest['nodes']}: no such file")
-    table = NodeTable(ingest["nodes"], needs_features=ingest["features"] is None).load()
-    edges = EdgeFiles(edge_files(ingest["edges"]), table.id_kind)
+    names = input_columns(ingest)
+    table = NodeTable(ingest["nodes"], needs_features=ingest["features"] is None, columns=names).load()
+    edges = EdgeFiles(edge_files(ingest["edges"]), table.id_kind, names.src, names.dst)
     checked = _check_selections(job, (table.id_array(), table.split, table.label))
     result = {"ok": True, "job": str(path), "nodes": int(table.rows), "edge_rows": int(edges.rows),
               "edge_files": len(edges.files), **checked}

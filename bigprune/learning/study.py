@@ -32,7 +32,7 @@ from ..common.memory import DEFAULT_BUDGET, FIXED_OVERHEAD, chunk_ranges, format
     rows_per_chunk
 from .powerlaw import fit_power_law, smallest_sufficient
 from .proxy import DEFAULT_L2, L2_GRID
-from ..common.runtime import progress, set_threads
+from ..common.runtime import progress, set_quiet, set_threads
 from ..common.schema import NO_LABEL, SPLIT_CODES
 from ..common.store import Store
 from ..common.store import reads_store
@@ -435,7 +435,7 @@ def _run_all(todo, context, workers):
         return
     # spawn, not fork: a forked child inherits the parent's OpenMP and numba thread pools.
     with _one_thread_env(), ProcessPoolExecutor(workers, mp_context=get_context("spawn"),
-                                                initializer=_init_worker,
+                                                initializer=_init_spawned_worker,
                                                 initargs=(context,)) as executor:
         futures = {executor.submit(_run_cell, cell): cell for cell in todo}
         try:
@@ -447,6 +447,12 @@ def _run_all(todo, context, workers):
 
 
 _WORKER = {}
+
+
+def _init_spawned_worker(context):
+    """A spawned worker draws no bars of its own: the parent's study bar counts its cells."""
+    set_quiet(True)
+    _init_worker(context)
 
 
 def _init_worker(context):

@@ -3,6 +3,7 @@ import time
 
 import numpy as np
 
+from ..common.classes import class_names
 from ..common.errors import InputError
 from ..common.ids import read_id_file, to_dense
 from ..common.memory import DEFAULT_BUDGET, parse_size, peak_rss, rows_per_chunk, working_memory
@@ -61,17 +62,39 @@ def train(store, nodes_from=None, answers=None, l2=None, hop=None, standardize=F
               "l2": choice, "standardized": bool(standardize)}
     if valid.size:
         result["valid"] = evaluate(model, features, label, valid, chunk)
+    names = class_names(store)
     if answers is not None:
         table = read_id_file(answers, "--answers", ("node_id", "label"))
         rows_a = to_dense(store, table.column("node_id"), "--answers", answers)
-        truth = table.column("label").to_numpy(zero_copy_only=False)
+        truth = _answer_labels(table.column("label"), names, answers)
         target_labels = np.full(len(label), NO_LABEL, dtype=np.int64)
         target_labels[rows_a] = truth
         result["answers"] = evaluate(model, features, target_labels, rows_a, chunk)
+    if names is not None:  # string labels at ingest: the name of each class id in per_class
+        result["class_names"] = {str(int(c)): names[str(int(c))] for c in model.classes}
     if "valid" not in result and "answers" not in result:
         raise InputError("--store has no valid nodes to score on; give --answers FILE.parquet")
     result.update(seconds=round(time.time() - started, 3), peak_rss=peak_rss())
     return result
+
+
+def _answer_labels(column, names, path):
+    """The answers' labels as class ids; names when the store was ingested with string labels."""
+    import pyarrow as pa
+
+    if pa.types.is_dictionary(column.type):
+        column = column.dictionary_decode()
+    if not (pa.types.is_string(column.type) or pa.types.is_large_string(column.type)):
+        return column.to_numpy(zero_copy_only=False)
+    if names is None:
+        raise InputError(f"--answers {path}: column 'label' holds strings but the store's labels are "
+                         "class ids; give class ids")
+    ids = {name: int(c) for c, name in names.items()}
+    unknown = [v for v in column.to_pylist() if v not in ids]
+    if unknown:
+        raise InputError(f"--answers {path}: column 'label' holds {unknown[0]!r}, which no training "
+                         f"label names (known: {', '.join(sorted(ids)[:10])}{', ...' if len(ids) > 10 else ''})")
+    return np.array([ids[v] for v in column.to_pylist()], dtype=np.int64)
 
 
 def hop_used(store, hop):

@@ -75,8 +75,9 @@ def propagate(store, hops=2, norm="sym", memory_budget=DEFAULT_BUDGET, threads=N
                          f"{MAX_RESTRICTED_HOPS}, or --no-restrict")
     budget = parse_size(memory_budget)
     threads = set_threads(threads)
-    store.entry("graph")  # no store, no graph: refused before the lock would create a folder
-    with store.locked():  # one writer at a time: a job's sweep must not take this run's directory
+    store.entry("graph")  # no store or no graph: say so before the lock would create the folder
+    with store.locked():  # a writer, as ingest: a second run (or a job) on the store exits 4;
+        # and a job's sweep must not take this run's directory
         return _propagate(store, hops, norm, budget, threads, dtype, bool(restrict))
 
 

@@ -16,6 +16,7 @@ from ..common.ids import lookup, lookup_in, read_id_file, store_ids
 from ..common.jsonout import dumps
 from ..common.options import FLAGS, read_budget
 from ..common.memory import FIXED_OVERHEAD, format_size, parse_size, peak_rss, rows_per_chunk, working_memory
+from ..common.classes import class_names
 from .report import CAUTION, changes, class_counts, coverage, diagnostics
 from ..common.runtime import set_threads
 from .kcenter import GROUP_ROWS, PRODUCT_ITEMS, cover
@@ -415,6 +416,9 @@ def _select(problem, strategy, label, out, started, extra):
               "targets": int(len(problem.targets)), "seed": problem.seed, **extra}
     report.update(coverage(dist, assign, len(order), asked=problem.radius))
     report["classes"] = class_counts(label[order])
+    names = class_names(problem.store)
+    if names is not None:  # string labels at ingest: the name of each class id above
+        report["class_names"] = {c: names[c] for c in report["classes"]}
     if "include" in extra["constraints"]:
         report["changed"] = changes(order, problem.initial)
     report["diagnostics"] = diagnostics(problem.store, order, problem.pool, problem.window_rows)

@@ -66,12 +66,18 @@ def test_power_iteration_matches_networkx(tmp_path, name, rows):
     assert abs(scores.sum() - 1.0) < 1e-9
 
 
-def test_isolated_nodes_get_the_teleport_share_only():
+def test_isolated_nodes_get_the_teleport_share_and_their_share_of_the_dangling_mass():
     adj, _ = GRAPHS["isolated nodes"](np.random.default_rng(11))
     scores, _, _ = power_iteration(*_csr(adj, False))
-    # reference: networkx.pagerank gives a node without edges the same score as every other one
+    # reference: networkx.pagerank (its dangling mass goes to every node uniformly) gives a node
+    # without edges (1 - 0.85) / n + 0.85 * D / n, D the total score of the nodes without edges:
+    # the same for every such node, and neither 1 / n nor the teleport share (1 - 0.85) / n alone
     expected = _networkx(adj, False)
-    assert scores[0] == pytest.approx(expected[0], abs=1e-10)
+    n, isolated = adj.shape[0], np.flatnonzero(np.diff(sp.csr_matrix(adj).indptr) == 0)
+    closed_form = (1 - 0.85) / n + 0.85 * expected[isolated].sum() / n
+    assert expected[0] == pytest.approx(closed_form, rel=1e-9)
+    assert expected[0] != pytest.approx(1 / n, rel=0.1) and expected[0] != pytest.approx(0.15 / n, rel=0.01)
+    assert scores[isolated] == pytest.approx(expected[isolated], abs=1e-10)
     assert scores[0] == pytest.approx(scores[17], abs=1e-15)
 
 

@@ -1,5 +1,6 @@
 """End to end: the demo's job on a small marketplace, through the command line."""
 import json
+import re
 
 import pyarrow.parquet as pq
 import pytest
@@ -44,8 +45,9 @@ def test_rerun_skips_everything(demo_run, capsys):
     capsys.readouterr()
     assert main(["run", str(demo_run / "job.toml"), "--quiet"]) == 0
     lines = capsys.readouterr().out.splitlines()
-    # ingest, propagate, one select per demo rule, the study
-    assert len(lines) == 3 + len(DEMO_STRATEGIES) and all(line.startswith("skip") for line in lines)
+    # ingest, propagate, one select per demo rule, the study, then the closing line
+    assert len(lines) == 4 + len(DEMO_STRATEGIES) and all(line.startswith("skip") for line in lines[:-1])
+    assert re.fullmatch(r"done: 0 step\(s\) run, \d+ skipped, [\d.]+ s, peak memory [\d.]+ [KMG]iB", lines[-1])
 
 
 def test_demo_runs_a_study(demo_run):

@@ -7,7 +7,6 @@ from sklearn.linear_model import LogisticRegression
 
 from bigprune.selection.hardness import (age_scores, age_weights, density_scores, el2n_scores,
                                entropy_scores, error_norms, percentiles, predictive_entropy)
-from bigprune.learning.proxy import fit_proxy
 
 
 @pytest.fixture(scope="module")
@@ -61,21 +60,39 @@ def test_el2n_scores_reach_sklearn_when_trained_to_convergence(iris):
     assert info["runs"] == 3 and all(0 < it < 1000 for it in info["proxy_iterations"])
 
 
-def test_el2n_early_scores_average_random_starts(iris):
-    # reference: the mean over runs of the EL2N formula (numpy) on proxies fitted directly with
-    # the documented random start, N(0, 1 / (d mean(x^2))) weights and zero intercepts, 3 steps
-    x, y, _, classes = iris
-    scores, info = el2n_scores(x, y, runs=2, iterations=3, seed=9)
-    everyone = np.arange(len(y))
+def sklearn_early_el2n(x, y, runs, iterations, seed, l2=1.0):
+    """EL2N (Paul et al., 2021) averaged over runs of scikit-learn's LogisticRegression(C = 1 / l2,
+    lbfgs) stopped after ``iterations`` steps, each warm-started from the documented random start
+    (weights ~ N(0, 1 / (d mean(x^2))) drawn from numpy.random.default_rng([seed, run]), zero
+    intercepts), the error norm in numpy."""
+    import warnings
+
+    from sklearn.exceptions import ConvergenceWarning
+
+    x = np.asarray(x, dtype=np.float64)
+    classes = np.unique(y)
     onehot = (y[:, None] == classes[None, :]).astype(np.float64)
+    spread = 1 / np.sqrt(x.shape[1] * np.mean(np.square(np.asarray(x, dtype=np.float32), dtype=np.float64)))
     each = []
-    for run in range(2):
-        rng = np.random.default_rng([9, run])
-        init = (rng.normal(scale=1 / np.sqrt(4 * np.mean(np.square(x, dtype=np.float64))),
-                           size=(4, 3)), np.zeros(3))
-        model = fit_proxy(x, y, everyone, max_iter=3, init=init)
-        each.append(np.linalg.norm(model.predict_proba(x, everyone) - onehot, axis=1))
-    np.testing.assert_allclose(scores, np.mean(each, axis=0), rtol=1e-10)
+    for run in range(runs):
+        rng = np.random.default_rng([seed, run])
+        model = LogisticRegression(C=1 / l2, warm_start=True, max_iter=iterations, tol=1e-12)
+        model.coef_ = rng.normal(scale=spread, size=(x.shape[1], len(classes))).T.copy()
+        model.intercept_, model.classes_ = np.zeros(len(classes)), classes
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", ConvergenceWarning)  # stopped early on purpose
+            model.fit(x, y)
+        each.append(np.linalg.norm(model.predict_proba(x) - onehot, axis=1))
+    return np.mean(each, axis=0), each
+
+
+def test_el2n_early_scores_average_random_starts(iris):
+    # reference: scikit-learn's model on the same rows, warm-started from the same random start
+    # and stopped after the same 3 L-BFGS steps (sklearn_early_el2n above), no bigprune code
+    x, y, _, _ = iris
+    scores, info = el2n_scores(x, y, runs=2, iterations=3, seed=9)
+    expected, each = sklearn_early_el2n(x, y, runs=2, iterations=3, seed=9)
+    np.testing.assert_allclose(scores, expected, rtol=1e-8, atol=1e-10)
     assert not np.allclose(each[0], each[1], atol=1e-3)  # the starts do differ
     converged = el2n_scores(x, y, runs=1, iterations=1000)[0]
     assert np.abs(scores - converged).max() > 1e-2  # early scores are not the converged ones
@@ -111,20 +128,30 @@ def test_age_weights_are_the_mean_of_the_beta_schedule(steps):
 
 
 def test_age_scores_mix_the_three_percentiles(iris):
-    # reference: scipy percentiles (kind="strict") of entropy (scipy.stats.entropy of the proxy's
-    # probabilities), density and centrality, mixed with the documented weights
-    x, y, _, _ = iris
+    # reference, none of it from bigprune: AGE's mix (Cai, Zheng & Chang, 2017) with weights from
+    # the published schedule (gamma = mean over t < 12 of scipy.stats.beta(1, 1.005 - 0.9^t).mean(),
+    # alpha = beta = (1 - gamma) / 2); entropy of scikit-learn's LogisticRegression(C = 1)
+    # probabilities (scipy.stats.entropy); density 1 / (1 + distance to the row's FAISS k-means
+    # centre, 3 centres, 20 iterations, seed 3) in numpy; scipy percentiles (kind="strict")
+    import faiss
+
+    x, y, probabilities, _ = iris
     centrality = np.random.default_rng(5).random(len(y))
     scores, info = age_scores(x, y, centrality, steps=12, seed=3)
-    everyone = np.arange(len(y))
-    entropy = stats.entropy(fit_proxy(x, y, everyone).predict_proba(x, everyone).T)
-    density = density_scores(x, 3, seed=3)
+    gamma = np.mean([stats.beta(1, 1.005 - 0.9 ** t).mean() for t in range(12)])
+    entropy = stats.entropy(probabilities.T)
+    kmeans = faiss.Kmeans(4, 3, niter=20, seed=3, verbose=False, min_points_per_centroid=1)
+    kmeans.train(np.ascontiguousarray(x))
+    centre = kmeans.index.search(np.ascontiguousarray(x), 1)[1][:, 0]
+    density = 1.0 / (1.0 + np.linalg.norm(x.astype(np.float64) - kmeans.centroids[centre], axis=1))
 
     def share(v):
         return np.array([stats.percentileofscore(v, e, kind="strict") / 100 for e in v])
 
-    w = info["weights"]
-    expected = (w["entropy"] * share(entropy) + w["density"] * share(density)
-                + w["pagerank"] * share(centrality))
-    np.testing.assert_allclose(scores, expected, rtol=0, atol=1e-12)
-    assert w["pagerank"] == pytest.approx(age_weights(12)[2])
+    expected = ((1 - gamma) / 2 * share(entropy) + (1 - gamma) / 2 * share(density)
+                + gamma * share(centrality))
+    # the proxy's entropies agree with scikit-learn's to ~1e-4: a near-tie may swap one rank
+    # (a percentile moves by 1/150), nothing more
+    assert np.mean(np.abs(scores - expected) < 1e-9) > 0.9
+    np.testing.assert_allclose(scores, expected, rtol=0, atol=(1 - gamma) / 2 * 2 / len(y) + 1e-12)
+    assert info["weights"]["pagerank"] == pytest.approx(gamma, rel=1e-12)

@@ -5,6 +5,7 @@ import os
 from collections import Counter
 from fractions import Fraction
 
+import networkx as nx
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
@@ -16,7 +17,6 @@ from sklearn.linear_model import LogisticRegression
 
 from bigprune.cli import main
 from bigprune.common.errors import InputError
-from bigprune.selection.hardness import el2n_scores
 from bigprune.selection.kcenter import greedy
 from bigprune.common.runtime import set_threads
 from bigprune.common.schema import NO_LABEL
@@ -312,12 +312,16 @@ def test_entropy_rule_ranks_by_sklearn_entropy(skewed):
 
 
 def test_el2n_rule_ranks_by_its_scores(skewed):
-    # reference: numpy stable argsort of el2n_scores run directly on the pool's last hop
+    # reference: EL2N of scikit-learn's LogisticRegression(C = 1 / l2) on the pool's last hop,
+    # warm-started from the documented random start and stopped after the rule's 10 L-BFGS
+    # steps, 5 runs (test_hardness.sklearn_early_el2n); numpy stable argsort, highest first
+    from test_hardness import sklearn_early_el2n
+
     pool = np.flatnonzero(skewed.load("graph", "split") == 1)
     rows = skewed.load("propagate", "hop_1")[pool]
     result = run(skewed, "el2n", 25, seed=3)
-    scores, _ = el2n_scores(rows, skewed.load("graph", "label")[pool], seed=3,
-                            l2=result["hardness"]["l2"]["l2"])
+    scores, _ = sklearn_early_el2n(rows, skewed.load("graph", "label")[pool], runs=5, iterations=10,
+                                   seed=3, l2=result["hardness"]["l2"]["l2"])
     np.testing.assert_array_equal(result["indices"], pool[np.argsort(-scores, kind="stable")][:25])
     assert result["hardness"]["runs"] == 5
 
@@ -645,3 +649,67 @@ def test_coverage_gives_the_share_within_radius_p90_and_p99(skewed, strategy, bu
         assert cover[name] == pytest.approx(np.quantile(d, q), rel=1e-9)
     assert cover["within"] == {"radius": 1.0, "p90": pytest.approx(np.mean(d <= np.quantile(d, 0.9))),
                                "p99": pytest.approx(np.mean(d <= np.quantile(d, 0.99)))}
+
+
+def _age_reference(rows, labels, centrality, steps, seed):
+    """AGE's score from its published definition (Cai, Zheng & Chang, 2017), computed without the
+    project: gamma = mean over t < steps of E[Beta(1, 1.005 - 0.9^t)] (scipy.stats.beta),
+    alpha = beta = (1 - gamma) / 2; entropy of scikit-learn's LogisticRegression(C = 1 / l2 = 1)
+    probabilities (scipy.stats.entropy); density 1 / (1 + distance to the row's k-means centre),
+    the centres from FAISS's k-means (as many as the classes, 20 iterations, the selection's
+    seed) and the distance in numpy; percentiles = scipy.stats.percentileofscore(kind="strict") / 100."""
+    gamma = np.mean([stats.beta(1, 1.005 - 0.9 ** t).mean() for t in range(steps)])
+    alpha = beta = (1 - gamma) / 2
+    model = LogisticRegression(C=1.0, max_iter=10000, tol=1e-10).fit(rows.astype(np.float64), labels)
+    entropy = stats.entropy(model.predict_proba(rows.astype(np.float64)).T)
+    import faiss
+
+    kmeans = faiss.Kmeans(rows.shape[1], len(np.unique(labels)), niter=20, seed=seed, verbose=False,
+                          min_points_per_centroid=1)
+    kmeans.train(np.ascontiguousarray(rows, dtype=np.float32))
+    centre = kmeans.index.search(np.ascontiguousarray(rows, dtype=np.float32), 1)[1][:, 0]
+    density = 1.0 / (1.0 + np.linalg.norm(rows - kmeans.centroids[centre], axis=1))
+
+    def share(v):
+        return np.array([stats.percentileofscore(v, e, kind="strict") / 100 for e in v])
+
+    return alpha * share(entropy) + beta * share(density) + gamma * share(centrality)
+
+
+@pytest.fixture
+def blob_store(tmp_path):
+    """150 nodes in three blobs 40 apart (4-d), edges only inside a blob, a quarter of
+    the labels flipped so that the proxy is unsure of some; 120 train, 30 test, no valid split
+    (so the proxy's l2 is 1, scikit-learn's C = 1)."""
+    rng = np.random.default_rng(21)
+    n = 150
+    blob = np.arange(n) % 3
+    centres = np.array([[0, 0, 0, 0], [40, 0, 0, 0], [0, 40, 0, 0]], dtype=np.float64)
+    features = centres[blob] + rng.normal(scale=1.0, size=(n, 4))
+    label = np.where(rng.random(n) < 0.25, (blob + rng.integers(1, 3, size=n)) % 3, blob)
+    same = blob[:, None] == blob[None, :]
+    upper = np.triu((rng.random((n, n)) < 0.12) & same, k=1)
+    adj = sp.csr_matrix((upper | upper.T).astype(np.float64))
+    split = np.where(np.arange(n) < 120, 1, 3)
+    label = np.where(split == 3, NO_LABEL, label)
+    store = add_propagate(write_graph_store(tmp_path / "store", adj, features, split, label))
+    return store, blob, adj
+
+
+def test_age_rule_follows_its_published_definition_with_networkx_pagerank(blob_store):
+    store, blob, adj = blob_store
+    pool = np.arange(120)
+    rows = store.load("propagate", "hop_1")[pool]  # the smoothed rows the rule reads
+    # reference centrality: networkx.pagerank (alpha 0.85) on the whole graph, read on the pool
+    rank = nx.pagerank(nx.from_scipy_sparse_array(adj), alpha=0.85, tol=1e-12)
+    centrality = np.array([rank[i] for i in pool])
+    k = 25
+    expected = _age_reference(rows, store.load("graph", "label")[pool], centrality, k, seed=0)
+    result = run(store, "age", k, seed=0)
+    picked = result["indices"]
+    # the picks are the k best by the reference score (a swap of near-ties is allowed: the
+    # proxy's entropies agree with scikit-learn's to ~1e-4, which may move a percentile by 1/120)
+    kth = np.sort(expected)[::-1][k - 1]
+    assert expected[picked].min() >= kth - 0.01, (expected[picked].min(), kth)
+    assert len(set(picked) & set(np.argsort(-expected)[:k])) >= k - 2
+    assert result["hardness"]["l2"]["l2"] == 1.0
