@@ -108,3 +108,27 @@ def test_plan_lists_every_candidate_when_cheap_and_refuses_when_nothing_fits():
     assert plan_neighbours(1_000_000, 200_000, 20_000, 16 * 200_000 * 50) == 50
     with pytest.raises(BudgetError, match="kmedian"):
         plan_neighbours(1_000_000, 200_000, 20_000, 1000)
+
+
+def test_ivf_lists_above_the_flat_size(monkeypatch):
+    # Pools above FLAT_MAX search an IVF index: its lists must hold nearly every true neighbour
+    # (scipy cdist) and give nearly the objective of exact lists.
+    import bigprune.selection.kmedian as kmedian
+
+    rng = np.random.default_rng(6)
+    centres = rng.normal(scale=5.0, size=(20, 4))
+    candidates = (centres[rng.integers(0, 20, 3000)] + rng.normal(size=(3000, 4))).astype(np.float32)
+    targets = (centres[rng.integers(0, 20, 400)] + rng.normal(size=(400, 4))).astype(np.float32)
+    exact = _lists(candidates, targets, 20)
+    monkeypatch.setattr(kmedian, "FLAT_MAX", 100)
+    approximate = _lists(candidates, targets, 20)
+    assert approximate[4]["index"] == "ivf" and exact[4]["index"] == "flat"
+    truth = np.argsort(cdist(targets, candidates), axis=1)[:, :20]
+    ptr, owner = approximate[0], approximate[1]
+    listed = {(int(t), c) for c in range(3000) for t in owner[ptr[c]:ptr[c + 1]]}
+    recall = np.mean([(t, int(c)) in listed for t in range(400) for c in truth[t]])
+    assert recall >= 0.95
+    klass, deficit = _no_quota(3000)
+    objective = [greedy(lists, np.zeros(0, np.int64), np.arange(3000), klass, deficit, 30)[1]["objective"]
+                 for lists in (exact, approximate)]
+    assert objective[1] == pytest.approx(objective[0], rel=0.02)
