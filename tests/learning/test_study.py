@@ -339,7 +339,7 @@ def test_recommendation_names_not_reached_ties_and_weak_classes():
 
 
 def test_report_says_not_reached_names_weak_classes_and_the_tie():
-    from bigprune.learning.studyreport import markdown, report_blocks
+    from bigprune.learning.studyreport import CURVES, PER_CLASS, markdown, report_blocks
 
     fits = study_module.fit_rules(SYNTHETIC, bootstrap=20)
     summary = {"recommendation": study_module.recommend(SYNTHETIC, tolerance=0.01), "fits": fits,
@@ -347,7 +347,7 @@ def test_report_says_not_reached_names_weak_classes_and_the_tie():
                "settings": {"embedding": "hop_2", "l2": 1.0, "l2_policy": "l2 = 1 in every cell.",
                             "pool": 100, "targets": "test", "repeats": 1,
                             "evaluation": {"nodes": 50, "source": "valid split"}}}
-    text = markdown(report_blocks(SYNTHETIC, summary, [0, 1, 2], {}))
+    text = markdown(report_blocks(SYNTHETIC, summary, [0, 1, 2], {CURVES: b"", PER_CLASS: b""}))
     assert "| slow | not reached |  |  |" in text
     assert "enough at 1" not in text and "| slow | 1 |" not in text
     assert ("At that budget 2 of 3 classes fall more than the tolerance below the full pool: "
