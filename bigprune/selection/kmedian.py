@@ -27,9 +27,14 @@ DENSE_PAIRS = 20_000_000
 # neighbours.
 SHARES = 4
 NEAREST_LEAST = 32
-# Above this many candidates the lists come from IVF with ~sqrt(n) lists and NPROBE probes.
+# Above this many candidates the lists come from IVF with ~sqrt(n) lists and NPROBE probes. On
+# 300k blob candidates, 60k targets, 200 neighbours (bench/select.py's data): 16 probes built
+# the lists in 25.7 s, 8 in 16.6 s, 4 in 14.2 s, with mean target distances 2.2301, 2.2301,
+# 2.2304 after the greedy (2 shared cores, load 7.5); recall@200 at 8 probes was 0.999 at 1M.
 FLAT_MAX = 50_000
-NPROBE = 16
+NPROBE = 8
+# Rows sampled per IVF list to train its centres (FAISS asks for at least 39).
+TRAIN_PER_LIST = 40
 # The IVF index is trained with a fixed seed, so that the rule's picks do not depend on --seed.
 INDEX_SEED = 0
 # Bytes held per listed pair: the lists by target while they are built (int32 candidate, float32
@@ -96,7 +101,7 @@ def _index(candidates, nearest):
     index = faiss.IndexIVFFlat(quantizer, width, nlist)
     index.cp.seed = INDEX_SEED
     rng = np.random.default_rng(INDEX_SEED)
-    index.train(candidates[np.sort(rng.choice(n, size=min(n, 32 * nlist), replace=False))])
+    index.train(candidates[np.sort(rng.choice(n, size=min(n, TRAIN_PER_LIST * nlist), replace=False))])
     index.add(np.ascontiguousarray(candidates))
     index.nprobe = min(nlist, NPROBE)
     # FAISS's Python constructor keeps the quantizer alive (index.referenced_objects); faiss
