@@ -18,6 +18,7 @@ from bigprune.common.errors import InputError
 from bigprune.propagation.propagate import propagate
 from bigprune.common.runtime import set_threads
 from bigprune.common.schema import NO_LABEL
+from bigprune.learning import recommend as recommend_module
 from bigprune.learning.proxy import L2_GRID
 from bigprune.selection.select import select
 from bigprune.selection.strategies import STRATEGIES
@@ -324,7 +325,7 @@ SYNTHETIC = (
 
 
 def test_recommendation_names_not_reached_ties_and_weak_classes():
-    rec = study_module.recommend(SYNTHETIC, tolerance=0.01)
+    rec = recommend_module.recommend(SYNTHETIC, tolerance=0.01)
     assert rec["rules"]["slow"] is None and rec["not_reached"] == ["slow"]
     assert rec["best"] == "cover"
     assert rec["tie"] == {"rules": ["near", "cover"], "training_nodes": 20,
@@ -333,7 +334,7 @@ def test_recommendation_names_not_reached_ties_and_weak_classes():
     assert rec["rules"]["near"]["lower_classes"] == []
     even = [dict(r, accuracy=0.895) if r["rule"] == "cover" and r["training_nodes"] == 20 else r
             for r in SYNTHETIC]
-    rec = study_module.recommend(even, tolerance=0.01)
+    rec = recommend_module.recommend(even, tolerance=0.01)
     assert rec["best"] == "near"  # equal accuracy: the rule given first
     assert rec["tie"]["broken_by"] == "order given (equal mean accuracy)"
 
@@ -341,8 +342,8 @@ def test_recommendation_names_not_reached_ties_and_weak_classes():
 def test_report_says_not_reached_names_weak_classes_and_the_tie():
     from bigprune.learning.studyreport import CURVES, PER_CLASS, markdown, report_blocks
 
-    fits = study_module.fit_rules(SYNTHETIC, bootstrap=20)
-    summary = {"recommendation": study_module.recommend(SYNTHETIC, tolerance=0.01), "fits": fits,
+    fits = recommend_module.fit_rules(SYNTHETIC, bootstrap=20)
+    summary = {"recommendation": recommend_module.recommend(SYNTHETIC, tolerance=0.01), "fits": fits,
                "cells": {"run": 0, "skipped": 0}, "diagnostics": {"rules": {}, "pool": None},
                "settings": {"embedding": "hop_2", "l2": 1.0, "l2_policy": "l2 = 1 in every cell.",
                             "pool": 100, "targets": "test", "repeats": 1,
