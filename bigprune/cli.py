@@ -115,7 +115,7 @@ def _parser():
     p.add_argument("--strategy", required=True, metavar="NAME",
                    help="kmedian (the default to start with: the mean target distance), kmeans, "
                         "kcenter (the largest target distance), kcenter-pool, random, stratified, "
-                        "degree, pagerank, entropy, el2n or age")
+                        "degree, pagerank, entropy, el2n, age, ddd or influence")
     p.add_argument("--budget", default=None, metavar="B",
                    help="a fraction of the training pool (0 < B < 1) or a count (integer >= 1); "
                         "required unless --radius")
@@ -132,6 +132,8 @@ def _parser():
     p.add_argument("--targets", default="test", metavar="SPLIT",
                    help="nodes to cover: test (default), valid or unlabeled")
     p.add_argument("--seed", type=int, default=0, metavar="S")
+    p.add_argument("--ensemble", default=None, metavar="N",
+                   help="ddd only: proxies in the ensemble, an even count (default 8)")
     p.add_argument("--out", required=True, metavar="FILE.parquet",
                    help="selection table; the report goes beside it as FILE.json")
     p = sub.add_parser("train", parents=[common], formatter_class=fmt, epilog=EXAMPLES["train"],
@@ -226,7 +228,8 @@ def _run(args):
 
     report = select(args.store, args.strategy, args.budget, targets=args.targets, seed=args.seed,
                     out=args.out, include=args.include, exclude=args.exclude,
-                    min_per_class=args.min_per_class, radius=args.radius, **opts)
+                    min_per_class=args.min_per_class, radius=args.radius, ensemble=args.ensemble,
+                    **opts)
     return {k: v for k, v in report.items() if not k.startswith("_")}
 
 

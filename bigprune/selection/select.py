@@ -15,11 +15,12 @@ import numpy as np
 from ..common.errors import BudgetError, InputError
 from ..common.ids import lookup, read_id_file
 from ..common.memory import FIXED_OVERHEAD, format_size, parse_size, peak_rss, rows_per_chunk, working_memory
-from .report import CAUTION, changes, class_counts, coverage, diagnostics
+from .report import CAUTION, changes, class_counts, coverage, diagnostics, ranking_profile
 from ..common.runtime import set_threads
 from .kcenter import GROUP_ROWS, PRODUCT_ITEMS, cover
 from ..common.schema import NO_LABEL, NO_SPLIT, SPLIT_CODES
 from ..common.store import STAGING, Store
+from .hardness import DDD_MEMBERS
 from .strategies import NEEDS_POOL_ROWS, NEEDS_PROXY, STRATEGIES, Problem
 
 # Which nodes each ``--targets`` choice means: split codes.
@@ -30,7 +31,7 @@ PROXY_ROW_COPIES = 4
 
 def select(store, strategy, budget=None, targets="test", seed=0, out=None, memory_budget="4GiB",
            threads=None, embedding_hop=None, initial=None, include=None, exclude=None,
-           min_per_class=None, radius=None):
+           min_per_class=None, radius=None, ensemble=None):
     """Choose ``budget`` training-pool nodes with ``strategy`` and report what they cover.
 
     Parameters
@@ -52,6 +53,8 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
         pool gets at least that many picks, capped at its pool size.
     radius : float >= 0 or None; ``kcenter`` only, instead of ``budget``: the fewest greedy picks
         that bring every target within ``radius`` (plus any quota picks).
+    ensemble : even int >= 2 or None; ``ddd`` only: the proxies in its ensemble (default
+        :data:`bigprune.selection.hardness.DDD_MEMBERS`).
 
     Returns
     -------
@@ -65,6 +68,7 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
     if targets not in TARGETS:
         raise InputError(f"--targets {targets}: unknown; use one of {', '.join(TARGETS)}")
     radius = _check_radius(radius, strategy, budget)
+    ensemble = _check_ensemble(ensemble, strategy)
     if include is not None and initial is not None:
         raise InputError(f"--include {include}: give either an include file or initial ids, not both")
     out = _check_out(out, store)
@@ -105,7 +109,7 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
     try:
         rule_bytes = memory - FIXED_OVERHEAD - _common_bytes(strategy, len(pool), k, width, classes)
         problem = Problem(store, pool, chosen_targets, k, start, int(seed), embedding, window_rows,
-                          label, quota, radius, proxy_rows, chunk, rule_bytes)
+                          label, quota, radius, proxy_rows, chunk, rule_bytes, ensemble)
         return _select(problem, strategy, label, out, started, extra)
     finally:
         if scratch is not None:
@@ -224,6 +228,19 @@ def _check_radius(radius, strategy, budget):
         raise InputError(f"--radius {radius}: give --budget or --radius, not both; the radius "
                          f"mode picks as many nodes as it needs")
     return value
+
+
+def _check_ensemble(ensemble, strategy):
+    if ensemble is None:
+        return DDD_MEMBERS
+    if strategy != "ddd":
+        raise InputError(f"--ensemble {ensemble}: only --strategy ddd has an ensemble; drop the "
+                         f"option or use ddd")
+    value = fraction_or_count(ensemble)
+    if value is None or value < 2 or value % 2:
+        raise InputError(f"--ensemble {ensemble}: use an even count >= 2 (members come in pairs "
+                         f"trained on complementary halves of the pool)")
+    return int(value)
 
 
 def _check_out(out, store):
@@ -370,6 +387,8 @@ def _select(problem, strategy, label, out, started, extra):
     """Run ``strategy``, build the report, write the outputs; returns the report."""
     choice = STRATEGIES[strategy](problem)
     order = choice.order
+    info = dict(choice.info or {})
+    ranking = info.pop("ranking", None)
     if choice.outcome is not None:
         dist, assign = choice.outcome.dist, choice.outcome.assign
     else:
@@ -385,7 +404,10 @@ def _select(problem, strategy, label, out, started, extra):
     if "include" in extra["constraints"]:
         report["changed"] = changes(order, problem.initial)
     report["diagnostics"] = diagnostics(problem.store, order, problem.pool, problem.window_rows)
-    report.update(choice.info or {})
+    if ranking is not None:
+        report["preference"] = ranking_profile(problem.store, ranking, problem.pool,
+                                               problem.window_rows)
+    report.update(info)
     report["caution"] = CAUTION
     report["seconds"] = round(time.perf_counter() - started, 3)
     report["peak_rss"] = peak_rss()

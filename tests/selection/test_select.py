@@ -130,7 +130,7 @@ def test_budget_larger_than_pool(store):
 def test_option_errors(store, tmp_path):
     cases = [
         (dict(strategy="best"), "--strategy best: unknown; use one of kmedian, kmeans, kcenter, kcenter-pool, "
-                                "random, stratified, degree, pagerank, entropy, el2n, age"),
+                                "random, stratified, degree, pagerank, entropy, el2n, age, ddd, influence"),
         (dict(targets="train"), "--targets train: unknown; use one of test, valid, unlabeled"),
         (dict(out=tmp_path / "sel.csv"), f"--out {tmp_path / 'sel.csv'}: must end in .parquet"),
         (dict(out=store.path / "sel.parquet"),
