@@ -25,7 +25,8 @@ Two exact reductions keep ``H`` small and invertible:
 Then, with ``P = (width + 1) * c`` parameters: exact when the dense ``H`` (``8 P^2`` bytes, plus
 a block of gradients) fits in half the rule's memory (Cholesky, scipy.linalg.cho_factor), else
 one conjugate-gradient solve per node (scipy.sparse.linalg.cg) with Hessian-vector products
-streamed over row chunks. At 4 GiB, exact reaches about P = 14,000 (Citeseer's pool: 1,813 x 6).
+streamed over row chunks. At the default 4 GiB, exact reaches about P = 15,000 (Citeseer's pool
+of 1,812 papers: 3,703 features reduced to 1,812, so P = 1,813 x 6 = 10,878, about 0.9 GiB).
 """
 import numpy as np
 from scipy.linalg import cho_factor, cho_solve
@@ -58,7 +59,7 @@ def influence_scores(rows, labels, l2=1.0, chunk_rows=65536, memory_bytes=1 << 3
     residual[everyone, np.searchsorted(model.classes, labels)] -= 1.0
     features, reduced = _reduced_features(rows, memory_bytes)
     size = (features.shape[1] + 1) * classes
-    block = rows_per_chunk(memory_bytes // 4, 8 * size, at_least=1)
+    block = rows_per_chunk(memory_bytes // 8, 16 * size, at_least=1)  # gradients and solutions
     info = {"l2": l2, "proxy_iterations": model.iterations, "parameters": int(size),
             "features": "Gram reduction to the rows' span" if reduced else "as given"}
     if 8 * size * size + 2 * 8 * size * min(block, len(rows)) <= memory_bytes // 2:
@@ -72,7 +73,7 @@ def influence_scores(rows, labels, l2=1.0, chunk_rows=65536, memory_bytes=1 << 3
 def _reduced_features(rows, memory_bytes):
     """``(features, reduced)``: ``z = S U`` from the Gram matrix when n < d and it fits."""
     n, d = rows.shape
-    if n >= d or 3 * 8 * n * n > memory_bytes // 2:
+    if n >= d or 8 * n * (3 * n + d) > memory_bytes // 2:  # Gram, eigenvectors, z; a float64 copy
         return rows, False
     x = np.asarray(rows, dtype=np.float64)
     values, vectors = np.linalg.eigh(x @ x.T)
