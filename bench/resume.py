@@ -36,8 +36,9 @@ ROOT = Path(__file__).resolve().parents[1]
 STRATEGIES = ("kcenter", "kcenter-pool", "random", "degree", "pagerank")
 
 
-def write_job(workdir, data, threads=None, budget=0.05):
-    """``workdir/job.toml`` over the scenario in ``data``: store and selections inside ``workdir``."""
+def write_job(workdir, data, threads=None, budget=0.05, study=False):
+    """``workdir/job.toml`` over the scenario in ``data``: store and selections inside ``workdir``;
+    with ``study``, a two-cell study (the full pool and random at 10 %) in ``workdir/study``."""
     workdir = Path(workdir)
     (workdir / "selections").mkdir(parents=True, exist_ok=True)
     lines = ['store = "store"', 'memory_budget = "1GiB"']
@@ -48,6 +49,9 @@ def write_job(workdir, data, threads=None, budget=0.05):
     for strategy in STRATEGIES:
         lines += ["[[select]]", f'strategy = "{strategy}"', f"budget = {budget}",
                   f'out = "selections/{strategy}.parquet"']
+    if study:
+        lines += ["[study]", 'out = "study"', 'strategies = ["random"]', "budgets = [0.1, 1]",
+                  "repeats = 1", f'answers = "{Path(data) / "answers.parquet"}"']
     (workdir / "job.toml").write_text("\n".join(lines) + "\n")
     return workdir / "job.toml"
 
@@ -79,6 +83,11 @@ def outputs(workdir):
             found[f"{stage}/{path.name}"] = _sha(path)
     for path in sorted((workdir / "selections").glob("*.parquet")):
         found[f"selections/{path.name}"] = _sha(path)
+    for path in sorted((workdir / "study" / "cells").glob("*.json")):  # a study's cells, less timings
+        record = json.loads(path.read_text())  # and keys (they name the store's stage folders)
+        record.pop("key", None)
+        record["result"].pop("seconds", None)
+        found[f"study/cells/{path.name}"] = hashlib.sha256(json.dumps(record, sort_keys=True).encode()).hexdigest()
     return found
 
 
@@ -90,7 +99,7 @@ def leftovers(workdir):
     left = [p.name for p in store.iterdir() if p.name in (".staging", ".lock") or p.name.endswith(".tmp")]
     left += [f"orphan {p.name}" for p in store.iterdir()
              if p.is_dir() and not p.name.startswith(".") and p.name not in named]
-    left += [p.name for p in (Path(workdir) / "selections").iterdir() if p.name.endswith(".tmp")]
+    left += [str(p.relative_to(workdir)) for p in Path(workdir).rglob("*.tmp") if p.parent != store]
     return sorted(left)
 
 

@@ -7,9 +7,10 @@ For each size (edge rows written), generates the marketplace scenario with
 
     ingest     Parquet partitions + node table -> store
     propagate  2 hops (SGC, d = 64) and PageRank
-    select B   kcenter with --budget B, targets the test split, one stage per ``--select-budget``
-               (default 0.1 of the training pool; a fixed count such as 2000 keeps k constant,
-               so its slope shows the cost per target rather than the k x targets growth)
+    select S B strategy S (``--strategies``, default kcenter) with --budget B, targets the test
+               split, one stage per strategy and ``--select-budget`` (default 0.1 of the training
+               pool, so k grows with n; a fixed count such as 2000 keeps k constant, so its slope
+               shows the cost per target rather than the k x targets growth)
     baseline   what a user would otherwise write: the whole graph as a scipy.sparse matrix Â and
                the features in memory, the same hops as ``A @ X`` products (skipped, with its
                estimated peak, when that estimate passes ``--baseline-cap``)
@@ -30,6 +31,7 @@ stages of that size are skipped.
     python3 bench/scale.py --large                          # adds 100M and 200M
     python3 bench/scale.py --sizes 100M --stage-timeout 1200
     python3 bench/scale.py --select-budget 0.1,2000         # k grows with n, then k fixed
+    python3 bench/scale.py --strategies kcenter,kmedian,kmeans   # three rules, k = 10% of the pool
 """
 import os
 import sys
@@ -54,14 +56,14 @@ import time  # noqa: E402
 from pathlib import Path  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[1]
-STAGES = ("ingest", "propagate")  # and one select stage per --select-budget
+STAGES = ("ingest", "propagate")  # and one select stage per --strategies x --select-budget
 # The baseline's bytes: Â as CSR (float32 values, int32 columns, self loops added; scipy holds A
 # beside it while it adds them), and X_k, X_{k+1} in float32.
 BASELINE_ENTRY_BYTES = 2 * 8
 BASELINE_VALUE_BYTES = 2 * 4
 DEFAULT_SIZES = "1M,10M"
 LARGE_SIZES = "100M,200M"
-_HEAD = (f"{'edges':>13} {'stage':<12} {'wall s':>9} {'stage s':>9} {'cpu s':>9} "
+_HEAD = (f"{'edges':>13} {'stage':<20} {'wall s':>9} {'stage s':>9} {'cpu s':>9} "
          f"{'peak GiB':>9} {'load mean/max':<13} status")
 _SUFFIX = {"": 1, "K": 10**3, "M": 10**6, "G": 10**9}
 # This driver imports nothing heavy: Linux carries the parent's RSS into a child's peak at
@@ -79,6 +81,9 @@ def main():
     parser.add_argument("--select-budget", default="0.1",
                         help="kcenter's --budget: a share of the pool or a count; several, comma-separated, "
                              "each run as its own stage (default %(default)s)")
+    parser.add_argument("--strategies", default="kcenter",
+                        help="select strategies, comma-separated; one stage per strategy and budget "
+                             "(default %(default)s)")
     parser.add_argument("--seed", type=int, default=0)
     parser.add_argument("--stage-timeout", type=float, default=None, metavar="SECONDS",
                         help="kill a stage that runs longer and record it")
@@ -172,8 +177,11 @@ def _select_budgets(args):
     return [b.strip() for b in args.select_budget.split(",") if b.strip()]
 
 
-def _select_stage(budget):
-    return f"select {budget}"
+def _select_stages(args):
+    """(stage name, strategy, budget) per strategy and budget."""
+    return [(f"select {strategy} {budget}", strategy, budget)
+            for strategy in (s.strip() for s in args.strategies.split(",") if s.strip())
+            for budget in _select_budgets(args)]
 
 
 def _ladder_step(tmp, edges, args):
@@ -191,10 +199,10 @@ def _ladder_step(tmp, edges, args):
                         "--nodes", str(data / "nodes.parquet"), "--store", str(store)] + common,
         "propagate": py + ["-m", "bigprune", "propagate", "--store", str(store),
                            "--hops", str(args.hops)] + common,
-        **{_select_stage(budget): py + ["-m", "bigprune", "select", "--store", str(store), "--strategy",
-                                        "kcenter", "--budget", budget, "--targets", "test",
-                                        "--out", str(tmp / "picks.parquet")] + common
-           for budget in _select_budgets(args)},
+        **{stage: py + ["-m", "bigprune", "select", "--store", str(store), "--strategy",
+                        strategy, "--budget", budget, "--targets", "test",
+                        "--out", str(tmp / "picks.parquet")] + common
+           for stage, strategy, budget in _select_stages(args)},
         "baseline": py + [__file__, "--baseline-child", str(store), "--hops", str(args.hops)],
     }
     rows, failed = [], None
@@ -298,10 +306,10 @@ def _last_json(text):
 
 def _line(row):
     if "wall" not in row:
-        return f"{row['edges']:>13,} {row['stage']:<12} {row['status']}"
+        return f"{row['edges']:>13,} {row['stage']:<20} {row['status']}"
     work = row.get("summary", {}).get("seconds")
     work = f"{work:9.1f}" if isinstance(work, (int, float)) else f"{'-':>9}"
-    return (f"{row['edges']:>13,} {row['stage']:<12} {row['wall']:9.1f} {work} {row['cpu']:9.1f} "
+    return (f"{row['edges']:>13,} {row['stage']:<20} {row['wall']:9.1f} {work} {row['cpu']:9.1f} "
             f"{row['peak_rss'] / 2**30:9.2f} {row['load_mean']:5.1f}/{row['load_max']:<4.1f} "
             f"{row['status']}")
 
@@ -329,10 +337,10 @@ def _summary(rows, args, command, started):
     lines += ["", head, "-" * len(head)] + [_line(r) for r in rows] + [""]
     lines.append(f"log-log slopes against edges (target: time <= 1.1; peak RSS flat and <= "
                  f"--memory-budget {args.memory_budget}):")
-    for stage in STAGES + tuple(_select_stage(b) for b in _select_budgets(args)):
+    for stage in STAGES + tuple(name for name, _, _ in _select_stages(args)):
         done = [r for r in rows if r["stage"] == stage and r["status"] == "ok"]
         if len(done) < 2:
-            lines.append(f"  {stage:<12} fewer than two finished sizes")
+            lines.append(f"  {stage:<20} fewer than two finished sizes")
             continue
         slopes = {
             "wall": _slope([(r["edges"], r["wall"]) for r in done]),
@@ -342,10 +350,10 @@ def _summary(rows, args, command, started):
             "peak RSS": _slope([(r["edges"], r["peak_rss"]) for r in done]),
         }
         within = all(r["peak_rss"] <= budget for r in done)
-        lines.append(f"  {stage:<12} " + ", ".join(f"{k} {v:.2f}" for k, v in slopes.items())
+        lines.append(f"  {stage:<20} " + ", ".join(f"{k} {v:.2f}" for k, v in slopes.items())
                      + f"; peak RSS {'within' if within else 'OVER'} the budget at every size")
         for a, b in zip(done, done[1:]):
-            lines.append(f"  {'':<12} {a['edges']:,} -> {b['edges']:,} edges (x{b['edges'] / a['edges']:g}): "
+            lines.append(f"  {'':<20} {a['edges']:,} -> {b['edges']:,} edges (x{b['edges'] / a['edges']:g}): "
                          f"wall x{b['wall'] / a['wall']:.2f}, stage s x"
                          f"{b['summary']['seconds'] / a['summary']['seconds']:.2f}, cpu x{b['cpu'] / a['cpu']:.2f}, "
                          f"peak RSS x{b['peak_rss'] / a['peak_rss']:.2f}")

@@ -2,16 +2,21 @@
 
 Errors from the library arrive typed (``bigprune.common.errors``) and leave as one line on stderr with
 exit status 2 (bad input or usage) or 3 (resources: the memory budget cannot work, or the disk
-is full).
+is full). What goes to stdout is strict JSON (``common.jsonout``) or plain lines; a reader that
+closes the pipe early (``| head``) ends the output, not the work: the command finishes and
+exits 0, without a traceback.
 """
 import argparse
 import errno
-import json
+import os
 import sys
 
 from . import __version__
 from .common.errors import BigpruneError
 from .common.memory import DEFAULT_BUDGET
+from .common.options import BUDGET_RULE
+
+BUDGET_HELP = BUDGET_RULE.replace("%", "%%")
 
 EXAMPLES = {
     "demo": """examples:
@@ -36,7 +41,7 @@ exit status: 0 done, 2 bad input or job file, 3 memory budget too small or disk 
     "study": """examples:
   bigprune study --store store/ --out study/                   # kmedian, kmeans, kcenter, random
   bigprune study --store store/ --out study/ --strategies kmedian,random,el2n
-  bigprune study --store store/ --out study/ --budgets 0.01,0.05,0.2,1 --repeats 5 \\
+  bigprune study --store store/ --out study/ --budgets 0.01,0.05,0.2,1.0 --repeats 5 \\
                  --answers answers.parquet --tolerance 0.005
 
   bigprune study --store store/ --out study/ --l2 1             # one fixed penalty for every cell
@@ -72,7 +77,8 @@ def _parser():
     common = argparse.ArgumentParser(add_help=False)
     common.add_argument("--quiet", action="store_true", help="no progress bars")
     common.add_argument("--memory-budget", default=DEFAULT_BUDGET, metavar="SIZE",
-                        help=f"peak memory this stage may use, e.g. 2G or 512MiB (default {DEFAULT_BUDGET})")
+                        help=f"peak memory this stage may use, with a unit: e.g. 2G, 512MiB "
+                             f"(default {DEFAULT_BUDGET})")
     common.add_argument("--threads", type=int, default=None, metavar="N",
                         help="worker threads (default: all available cores)")
 
@@ -84,7 +90,9 @@ def _parser():
 
     p = sub.add_parser("demo", parents=[common], formatter_class=fmt, epilog=EXAMPLES["demo"],
                        help="generate the marketplace scenario and run the whole pipeline on it")
-    p.add_argument("--workdir", required=True, metavar="DIR", help="where the data, store and outputs go")
+    p.add_argument("--workdir", required=True, metavar="DIR",
+                   help="where the data, store and outputs go: a new or empty folder, or one an "
+                        "earlier demo made (it holds a .bigprune-demo file)")
     p.add_argument("--nodes", type=int, default=None, metavar="N", help="listings to generate")
     p.add_argument("--seed", type=int, default=0, metavar="S", help="random seed (default 0)")
 
@@ -117,14 +125,14 @@ def _parser():
                         "kcenter (the largest target distance), kcenter-pool, random, stratified, "
                         "degree, pagerank, entropy, el2n, age, ddd or influence")
     p.add_argument("--budget", default=None, metavar="B",
-                   help="a fraction of the training pool (0 < B < 1) or a count (integer >= 1); "
-                        "required unless --radius")
+                   help=f"how many training-pool nodes to pick: {BUDGET_HELP}; required unless "
+                        f"--radius")
     p.add_argument("--radius", default=None, metavar="R",
                    help="kcenter only, instead of --budget: the fewest nodes that bring every "
                         "target within distance R")
     p.add_argument("--min-per-class", default=None, metavar="N",
-                   help="each class gets at least N picks (capped at its pool size); N < 1 is "
-                        "a fraction of the budget")
+                   help="each class gets at least N picks (capped at its pool size); N by the "
+                        "budget's rule: a count (20) or a fraction of the budget (0.1, 10%%)")
     p.add_argument("--include", default=None, metavar="FILE.parquet",
                    help="node_id column of pool nodes that must stay (e.g. the last selection)")
     p.add_argument("--exclude", default=None, metavar="FILE.parquet",
@@ -156,8 +164,9 @@ def _parser():
                        help="train the proxy on each rule's subsets at several budgets; recommend one")
     p.add_argument("--store", required=True, metavar="DIR")
     p.add_argument("--out", required=True, metavar="DIR", help="folder for the table, fits, plots and report")
-    p.add_argument("--budgets", default="0.01,0.02,0.05,0.1,0.2,0.5,1", metavar="B,B,...",
-                   help="fractions of the pool in (0, 1] or counts; 1 = the full pool (default %(default)s)")
+    p.add_argument("--budgets", default="0.01,0.02,0.05,0.1,0.2,0.5,1.0", metavar="B,B,...",
+                   help=f"training-pool sizes, as for select: each {BUDGET_HELP}; 1.0 = the full "
+                        f"pool, 1 = one node (default %(default)s)")
     p.add_argument("--strategies", default=None, metavar="NAME,...", help="rules to compare (default: kmedian,kmeans,kcenter,random)")
     p.add_argument("--repeats", type=int, default=3, metavar="R", help="seeds 0 .. R-1 (default 3)")
     p.add_argument("--answers", default=None, metavar="FILE.parquet",
@@ -175,27 +184,61 @@ def _parser():
                        help="run a job file: ingest, propagate, select, skipping what is current")
     p.add_argument("job", metavar="JOB.toml")
     p.add_argument("--dry-run", action="store_true", help="print the plan and change nothing")
+    p.add_argument("--json", action="store_true",
+                   help="one JSON document on stdout (each step: stage, run, why, outcome); the "
+                        "step lines go to stderr")
 
     p = sub.add_parser("check", parents=[common], formatter_class=fmt, epilog=EXAMPLES["check"],
-                       help="validate a job file and its inputs without computing")
+                       help="make every check run would make, without computing")
     p.add_argument("job", metavar="JOB.toml")
+    p.add_argument("--json", action="store_true", help="print what was checked as one JSON document")
 
     p = sub.add_parser("status", parents=[common], formatter_class=fmt, epilog=EXAMPLES["status"],
                        help="show what a store holds, from which inputs, and when")
     p.add_argument("--store", required=True, metavar="DIR")
+    p.add_argument("--json", action="store_true", help="print the store's state as one JSON document")
     return parser
 
 
-def _run(args):
-    if args.command in ("run", "check", "status"):
-        from .job.job import check_job, run_job, store_status
+class _Stdout:
+    """Lines to stdout; once the reader has closed the pipe (``| head``), the rest is dropped
+    (stdout is pointed at /dev/null) so that the command still finishes its work."""
 
+    def __init__(self):
+        self.closed = False
+
+    def __call__(self, text):
+        if self.closed:
+            return
+        try:
+            print(text, flush=True)
+        except BrokenPipeError:
+            self.closed = True
+            try:
+                os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+            except (OSError, ValueError):  # stdout is no file (e.g. captured in a test)
+                pass
+
+
+def _to_stderr(text):
+    print(text, file=sys.stderr)
+
+
+def _run(args, emit):
+    if args.command in ("run", "check", "status"):
+        from .job.job import check_job, run_job, store_state, store_status
+
+        wants_json = getattr(args, "json", False)
         if args.command == "run":
-            run_job(args.job, dry_run=args.dry_run)
-        elif args.command == "check":
-            check_job(args.job)
-        else:
-            print(store_status(args.store))
+            steps = run_job(args.job, dry_run=args.dry_run, echo=_to_stderr if wants_json else emit)
+            return {"job": args.job, "dry_run": args.dry_run, "steps": [_step(s) for s in steps]} \
+                if wants_json else None
+        if args.command == "check":
+            checked = check_job(args.job, echo=(lambda text: None) if wants_json else emit)
+            return checked if wants_json else None
+        if wants_json:
+            return store_state(args.store)
+        emit(store_status(args.store))
         return None
     opts = {"memory_budget": args.memory_budget, "threads": args.threads}
     if args.command == "demo":
@@ -230,7 +273,21 @@ def _run(args):
                     out=args.out, include=args.include, exclude=args.exclude,
                     min_per_class=args.min_per_class, radius=args.radius, ensemble=args.ensemble,
                     **opts)
-    return {k: v for k, v in report.items() if not k.startswith("_")}
+    return _printable(report)
+
+
+def _printable(report):
+    """A select report as printed: without the dense row numbers the Python API returns."""
+    return {k: v for k, v in report.items() if k != "indices" and not k.startswith("_")}
+
+
+def _step(step):
+    """One step of a job as printed: what ran and why, and its result's summary."""
+    out = {"stage": step["stage"], "run": step["run"], "why": step["why"]}
+    if "result" in step:
+        result = step["result"]
+        out["result"] = _printable(result) if isinstance(result, dict) else result
+    return out
 
 
 def main(argv=None):
@@ -242,8 +299,9 @@ def main(argv=None):
     from .common.runtime import set_quiet
 
     set_quiet(args.quiet)
+    emit = _Stdout()
     try:
-        result = _run(args)
+        result = _run(args, emit)
     except BigpruneError as exc:
         print(f"bigprune {args.command}: error: {exc}", file=sys.stderr)
         return exc.exit_code
@@ -263,7 +321,9 @@ def main(argv=None):
               file=sys.stderr)
         return 130
     if result is not None and args.command != "demo":
-        print(json.dumps(result, indent=2, default=str))
+        from .common.jsonout import dumps
+
+        emit(dumps(result, indent=2))
     return 0
 
 

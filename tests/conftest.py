@@ -4,6 +4,7 @@ import hashlib
 from collections import namedtuple
 from pathlib import Path
 
+import networkx as nx
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
@@ -43,6 +44,40 @@ def random_symmetric(n, density, rng, weighted=False):
     else:
         upper.data = rng.uniform(0.1, 2.0, size=upper.nnz)
     return (upper + upper.T).tocsr()
+
+
+def add_propagate(store):
+    """Commit a propagate stage: hop_1 = D^-1/2 (A+I) D^-1/2 X, PageRank from networkx."""
+    indptr, indices = store.load("graph", "indptr"), store.load("graph", "indices")
+    n = len(indptr) - 1
+    adj = sp.csr_matrix((np.ones(len(indices)), indices, indptr), shape=(n, n))
+    a = adj + sp.identity(n)
+    scale = sp.diags(1.0 / np.sqrt(np.asarray(a.sum(1)).ravel()))
+    hop = (scale @ a @ scale @ store.load("graph", "features").astype(np.float64)).astype(np.float32)
+    rank = nx.pagerank(nx.from_scipy_sparse_array(adj), alpha=0.85, tol=1e-12)
+    with store.begin("propagate", params={"hops": 1, "norm": "sym"}) as w:
+        w.save("hop_1", hop)
+        w.save("pagerank", np.array([rank[i] for i in range(n)], dtype=np.float64))
+    return store
+
+
+@pytest.fixture
+def skewed(tmp_path):
+    """260 nodes, classes in proportions ~ 60/25/10/5 %: 140 train, 20 valid, 100 test.
+
+    Train class 3 has 5 nodes, so a quota of 4 binds for every rule at budget 16.
+    """
+    rng = np.random.default_rng(11)
+    n = 260
+    label = rng.choice(4, size=n, p=[0.6, 0.25, 0.1, 0.05])
+    label[:5] = 3
+    label[5:140][label[5:140] == 3] = 0
+    features = rng.normal(size=(n, 6)) + 1.5 * label[:, None]
+    split = np.zeros(n, dtype=np.int8)
+    split[:140], split[140:160], split[160:] = 1, 2, 3
+    label = np.where(split == 3, NO_LABEL, label)
+    adj = random_symmetric(n, 0.04, rng)
+    return add_propagate(write_graph_store(tmp_path / "skewed", adj, features, split, label))
 
 
 @pytest.fixture

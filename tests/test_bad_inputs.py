@@ -592,7 +592,7 @@ JOB_CASES = {
                         "{job}: [ingest]: nodes = True should be a path string"),
     "not TOML": ("run", lambda t: t.replace("[ingest]", "[ingest"), "{job}: not valid TOML"),
     "unknown strategy": ("check", lambda t: t.replace('"random"', '"randm"'),
-                         "{job}: [[select]] strategy 'randm' is unknown"),
+                         "{job}: [[select]] #1: strategy = 'randm' is unknown"),
     "inputs checked too": ("check", lambda t: t.replace("data/nodes.parquet", "nodes.csv"),
                            "--nodes {dir}/nodes.csv: no such file"),
 }
@@ -620,8 +620,8 @@ def _pool_size(store):
 
 
 SELECT_CASES = {
-    "budget 0": (["--budget", "0"], "--budget 0: use a fraction between 0 and 1"),
-    "budget 1.5": (["--budget", "1.5"], "--budget 1.5: use a fraction between 0 and 1"),
+    "budget 0": (["--budget", "0"], "--budget 0: use a fraction in (0, 1] written with a decimal point"),
+    "budget 1.5": (["--budget", "1.5"], "--budget 1.5: use a fraction in (0, 1] written with a decimal point"),
     "budget larger than pool": (["--budget", "{pool_plus}"], "larger than the training pool ({pool} nodes)"),
     "no targets": (["--targets", "unlabeled"], "--targets unlabeled: no node is in this set"),
     "out inside the store": (["--out", "{store}/picks.parquet"], "inside the store directory"),

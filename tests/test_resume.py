@@ -1,17 +1,22 @@
 """The nightly job under faults: killed runs resume to the same bytes, locks, leftovers, reruns,
 changed inputs, and a full disk.
 
-The kill trials use ``bench/resume.py``'s helpers (a subprocess SIGKILLed at a chosen step);
-the reference is the same job run once uninterrupted.
+The kill trials run the job in a subprocess that kills itself at a named step of a commit
+(``BIGPRUNE_FAULT``, ``bigprune/common/faults.py``), so every step is hit on every run; the
+reference is the same job run once uninterrupted. ``bench/resume.py`` kills at random moments.
 """
 import errno
 import importlib.util
+import itertools
 import json
 import os
+import re
 import shutil
+import signal
 import socket
 import subprocess
 import sys
+import time
 from pathlib import Path
 
 import numpy as np
@@ -19,6 +24,7 @@ import pyarrow.parquet as pq
 import pytest
 
 from bigprune.cli import main
+from bigprune.common.faults import ENV, POINTS, STAGES
 from bigprune.scenario.scenario import generate
 from conftest import tree_digest
 
@@ -33,7 +39,7 @@ def scenario(tmp_path_factory):
     """A 2000-node scenario and the job's outputs from one uninterrupted run (in a subprocess)."""
     root = tmp_path_factory.mktemp("resume")
     generate(root / "data", nodes=2000, avg_degree=6, dim=8, days=2, parts_per_day=2, seed=11)
-    bench.write_job(root / "reference", root / "data", threads=1)
+    bench.write_job(root / "reference", root / "data", threads=1, study=True)
     code, _, stderr, _ = bench.run(root / "reference")
     assert code == 0, stderr
     return root, bench.outputs(root / "reference")
@@ -58,16 +64,139 @@ def plan(job, capsys):
     return [line.split()[0] for line in capsys.readouterr().out.splitlines()]
 
 
-@pytest.mark.parametrize("at, delay", [(None, 0.4), ("ingest", 0.3), ("propagate", 0.0),
-                                       ("select random", 0.0)])
-def test_killed_run_resumes_to_the_same_bytes(scenario, tmp_path, at, delay):
-    root, reference = scenario
-    bench.write_job(tmp_path, root / "data", threads=1)
-    trial = bench.kill_and_resume(tmp_path, delay, at=at)
-    assert trial["resume_code"] == 0, trial["resume_stderr"]
-    # reference: the same job run once without interruption
-    assert trial["outputs"] == reference
-    assert trial["leftovers"] == [] and trial["all_skip_after"]
+# ---- kills at named points --------------------------------------------------------------------
+FIRST_SELECTION = bench.STRATEGIES[0]  # the job's first [[select]]: where a select fault fires
+FIRST_CELL = "full-pool-b1-r0.json"  # the study's first cell
+
+
+@pytest.fixture(scope="module")
+def faulted(scenario, tmp_path_factory):
+    """Every (stage, point) fault: a job run in its own folder, killed there; what it left.
+
+    The runs are independent subprocesses, run four at a time to spare the wall clock."""
+    root, _ = scenario
+    base = tmp_path_factory.mktemp("faults")
+    pending, running, trials = list(itertools.product(STAGES, POINTS)), {}, {}
+    while pending or running:
+        while pending and len(running) < 4:
+            stage, point = pending.pop()
+            work = base / f"{stage}-{point}"
+            bench.write_job(work, root / "data", threads=1, study=True)
+            env = {**bench.environment(), ENV: f"{stage}:{point}"}
+            running[(stage, point)] = subprocess.Popen(bench.command(work), env=env, stdout=subprocess.DEVNULL,
+                                                       stderr=subprocess.PIPE, text=True)
+        for trial, child in list(running.items()):
+            if child.poll() is not None:
+                work = base / "-".join(trial)
+                trials[trial] = {"work": work, "code": child.returncode, "stderr": child.stderr.read(),
+                                 "debris": debris(work), "committed": committed(work),
+                                 "recorded": recorded(work), "selection": _file_sha(work / "selections" / f"{FIRST_SELECTION}.parquet")}
+                child.stderr.close()
+                del running[trial]
+        time.sleep(0.02)
+    return trials
+
+
+def committed(work):
+    """sha256 of each file of the stages the store's manifest names (nothing without a manifest)."""
+    manifest = work / "store" / "manifest.json"
+    if not manifest.exists():
+        return {}
+    stages = json.loads(manifest.read_text())["stages"]
+    return {f"{stage}/{path.name}": bench._sha(path) for stage, entry in stages.items()
+            for path in sorted((work / "store" / entry["dir"]).iterdir())}
+
+
+def recorded(work):
+    """The job outputs the manifest records as written, by file name."""
+    manifest = work / "store" / "manifest.json"
+    outputs = json.loads(manifest.read_text()).get("outputs", {}) if manifest.exists() else {}
+    return sorted(Path(path).name for path in outputs)
+
+
+def debris(work):
+    """What a killed run left that no commit names: the lock, staging folders, stage folders
+    the manifest does not name, temporaries; process ids and tokens shown as PID and TOKEN."""
+    store = work / "store"
+    named = {entry["dir"] for entry in json.loads((store / "manifest.json").read_text())["stages"].values()} \
+        if (store / "manifest.json").exists() else set()
+    found = [".lock"] if (store / ".lock").exists() else []
+    found += [f"staging {p.name.split('-')[0]}" for p in (store / ".staging").glob("*")]
+    found += [f"orphan {p.name.split('-')[0]}" for p in store.glob("*-*") if p.is_dir() and p.name not in named]
+    found += [re.sub(r"\.\d+\.tmp$", ".PID.tmp", str(p.relative_to(work))) for p in work.rglob("*.tmp")]
+    return sorted(found)
+
+
+def _file_sha(path):
+    return bench._sha(path) if path.exists() else None
+
+
+# What each kill leaves besides the job's lock: the stage's files in staging before the rename, a
+# stage folder no manifest names after it; select's and the study's temporaries beside their outputs.
+DEBRIS = {
+    "after-temp-write": {"select": [f"selections/.{FIRST_SELECTION}.parquet.PID.tmp"],
+                         "study": [f"study/cells/.{FIRST_CELL}.PID.tmp"]},
+    "before-rename": {"select": [f"selections/.{FIRST_SELECTION}.json.PID.tmp",
+                                 f"selections/.{FIRST_SELECTION}.parquet.PID.tmp"],
+                      "study": [f"study/cells/.{FIRST_CELL}.PID.tmp"]},
+    "after-rename": {"select": [f"selections/.{FIRST_SELECTION}.parquet.PID.tmp"], "study": []},
+    "before-manifest": {"select": [], "study": []},
+}
+
+
+def expected_debris(stage, point):
+    if stage in ("graph", "propagate"):
+        return sorted([".lock", f"{'staging' if point in POINTS[:2] else 'orphan'} {stage}"])
+    return sorted([".lock", *DEBRIS[point][stage]])
+
+
+@pytest.mark.parametrize("point", POINTS)
+@pytest.mark.parametrize("stage", STAGES)
+def test_killed_at_a_named_point_resumes_to_the_same_bytes(scenario, faulted, stage, point, capsys):
+    _, reference = scenario
+    trial = faulted[(stage, point)]
+    # the run died at the named point, not by a timer: every run reaches it
+    assert trial["code"] == -signal.SIGKILL, trial["stderr"]
+    assert trial["debris"] == expected_debris(stage, point)
+    # the store commits nothing of the killed stage: what its manifest names is what the
+    # uninterrupted run (the reference) committed for the stages before it
+    order = ("graph", "propagate", "select", "study")
+    earlier = {s for s in ("graph", "propagate") if order.index(s) < order.index(stage)}
+    assert trial["committed"] == {k: v for k, v in reference.items() if k.split("/")[0] in earlier}
+    selections = [f"{s}.parquet" for s in bench.STRATEGIES]
+    assert trial["recorded"] == (sorted(selections) if stage == "study" else [])
+    if stage == "select":  # its output is either absent or complete, never half written
+        complete = point == "before-manifest"
+        assert trial["selection"] == (reference[f"selections/{FIRST_SELECTION}.parquet"] if complete else None)
+    # the next run finishes the job to the reference's bytes, sweeping what the kill left
+    work = trial["work"]
+    assert main(["run", str(work / "job.toml"), "--quiet"]) == 0
+    assert bench.outputs(work) == reference
+    assert debris(work) == [] and bench.leftovers(work) == []
+    assert set(plan(work, capsys)) == {"skip"}
+
+
+def test_a_killed_select_leaves_a_temporary_that_the_next_select_sweeps(done, tmp_path, capsys):
+    """A standalone select killed between writing and renaming its output; a live writer's
+    temporary in the same folder is left alone."""
+    out = tmp_path / "out"
+    out.mkdir()
+    live = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)"])
+    try:
+        (out / f".other.parquet.{live.pid}.tmp").write_text("being written")
+        args = ["select", "--store", str(done / "store"), "--strategy", "random", "--budget", "0.05",
+                "--out", str(out / "picks.parquet"), "--threads", "1", "--quiet"]
+        killed = subprocess.Popen([sys.executable, "-m", "bigprune", *args], stdout=subprocess.DEVNULL,
+                                  env={**bench.environment(), ENV: "select:after-temp-write"})
+        assert killed.wait() == -signal.SIGKILL
+        assert sorted(p.name for p in out.iterdir()) == sorted(
+            [f".picks.parquet.{killed.pid}.tmp", f".other.parquet.{live.pid}.tmp"])
+        assert main(args) == 0
+        assert sorted(p.name for p in out.iterdir()) == sorted(
+            ["picks.parquet", "picks.json", f".other.parquet.{live.pid}.tmp"])
+    finally:
+        live.kill()
+        live.wait()
 
 
 def test_stale_lock_is_taken_over(done, capsys):

@@ -30,7 +30,11 @@ def store_ids(store):
 
 def lookup(store, ids, option, path):
     """``ids`` cast to the graph's id type and their dense indices (int64, -1 where unknown)."""
-    known = store_ids(store)
+    return lookup_in(store_ids(store), ids, option, path)
+
+
+def lookup_in(known, ids, option, path):
+    """:func:`lookup` against ``known`` (Arrow array of ids, row ``i`` for dense index ``i``)."""
     ids = ids.combine_chunks() if isinstance(ids, pa.ChunkedArray) else ids
     try:
         ids = ids.cast(known.type)

@@ -18,13 +18,19 @@ _UNITS = {"": 1, "b": 1, "k": KIB, "kb": KIB, "kib": KIB, "m": MIB, "mb": MIB, "
 
 
 def parse_size(value, option="--memory-budget"):
-    """Return a byte count from ``4G``, ``512MiB``, ``1.5GB`` or an int (binary units)."""
+    """Return a byte count from text with a unit (``4G``, ``512MiB``, ``1.5GB``, ``100B``; binary
+    units) or a Python int (bytes, for callers that computed it). Text without a unit is refused:
+    ``4`` would otherwise silently mean 4 bytes."""
     if isinstance(value, (int, float)) and not isinstance(value, bool):
         size = int(value)
     else:
         match = re.fullmatch(r"\s*([0-9]*\.?[0-9]+)\s*([a-zA-Z]*)\s*", str(value))
         if not match or match.group(2).lower() not in _UNITS:
-            raise InputError(f"{option} {value!r} is not a size: use bytes or a K/M/G suffix, e.g. 4G")
+            raise InputError(f"{option} {value!r} is not a size: use a K/M/G suffix, e.g. 4G")
+        if match.group(2) == "":
+            number = float(match.group(1))
+            raise InputError(f"{option} {match.group(1)}: give a unit, e.g. {number:.12g}GiB or "
+                             f"{number * 1024:.12g}MiB")
         size = int(float(match.group(1)) * _UNITS[match.group(2).lower()])
     if size <= 0:
         raise InputError(f"{option} {value!r} must be positive")

@@ -3,7 +3,23 @@
 Each stage writes into a staging directory and commits by renaming it to ``<stage>-<token>``
 and then replacing ``manifest.json`` atomically; the manifest is the single commit point, so a
 stage that dies leaves the store exactly as it was.
+
+Readers against a committing writer. A reader (``select``, ``train``, ``study``: see
+:meth:`Store.reading`) holds a shared ``flock`` on the store directory itself and reads the
+manifest once, after taking it; every stage directory it opens comes from that one manifest
+(pinned), so it never mixes two commits. A commit renames its new directory in and replaces the
+manifest without waiting: a reader that pinned the old manifest still finds the old directories.
+Only removing the superseded directories could pull data away from a reader, so the writer does
+that under an exclusive ``flock`` taken without blocking; while any reader holds the store the
+removal is deferred, and the directories (named by no manifest) are removed by the next locked
+writer that finds no reader. Deferring rather than waiting keeps a nightly job from stalling
+behind an hours-long study; the lock is on the directory, so a reader writes nothing (and works
+on a read-only store). ``status`` reads only ``manifest.json``, replaced atomically, so it sees
+one commit without a lock. Locks are advisory and local: a store on a network filesystem
+without ``flock`` support is not protected.
 """
+import fcntl
+import functools
 import json
 import os
 import shutil
@@ -17,7 +33,9 @@ import numpy as np
 
 from .. import __version__
 from .errors import InputError, LockedError
+from .faults import fault
 from .memory import peak_rss
+from .tempfiles import alive as _alive, sweep_temps
 
 FORMAT_VERSION = 1
 MANIFEST = "manifest.json"
@@ -32,12 +50,35 @@ RUN_HINT = {"graph": "bigprune ingest", "propagate": "bigprune propagate"}
 class Store:
     """A store directory; ``Store(path)`` opens it without touching the disk."""
 
-    def __init__(self, path):
+    def __init__(self, path, manifest=None):
+        """``manifest``: a manifest pinned by a reader that holds this store (see :meth:`reading`)."""
         self.path = Path(path)
+        self._pinned = manifest
 
     # ---- reading ---------------------------------------------------------------------------
+    @contextmanager
+    def reading(self):
+        """Hold the store for reading: a shared lock, and the manifest read once and pinned.
+
+        Inside, :meth:`manifest` (so :meth:`entry`, :meth:`stage_dir`, :meth:`load`) returns the
+        pinned manifest, and no writer removes a directory it names. Nested use keeps the pin.
+        """
+        if self._pinned is not None:
+            yield self
+            return
+        held = _share(self.path)
+        try:
+            self._pinned = self.manifest()
+            yield self
+        finally:
+            self._pinned = None
+            if held is not None:
+                os.close(held)
+
     def manifest(self):
         """The committed manifest (an empty one for a store that does not exist yet)."""
+        if self._pinned is not None:
+            return self._pinned
         file = self.path / MANIFEST
         if not file.exists():
             return {"format_version": FORMAT_VERSION, "stages": {}}
@@ -111,6 +152,16 @@ class Store:
         return StageWriter(self, stage, params, inputs or {})
 
 
+def reads_store(function):
+    """Run ``function(store, ...)`` inside ``store.reading()`` (``store`` a path or a Store)."""
+    @functools.wraps(function)
+    def wrapper(store, *args, **kwargs):
+        store = store if isinstance(store, Store) else Store(store)
+        with store.reading():
+            return function(store, *args, **kwargs)
+    return wrapper
+
+
 class StageWriter:
     """Collects one stage's outputs in a staging directory and commits them on success."""
 
@@ -130,7 +181,7 @@ class StageWriter:
         manifest = self.store.manifest()  # refuse a store of a newer format before writing anything
         _sweep_staging(root / STAGING)
         if str(root.resolve()) in _HELD:
-            _sweep_orphans(root, manifest)
+            _remove_unread(root, _orphans(root, manifest))
         token = f"{self.stage}-{os.getpid()}-{uuid.uuid4().hex[:8]}"
         self.path = root / STAGING / token
         self.path.mkdir(parents=True)
@@ -182,9 +233,12 @@ class StageWriter:
         root = self.store.path
         manifest = self.store.manifest()
         final = self.path.name.split("-", 1)[0] + "-" + uuid.uuid4().hex[:12]
+        fault(self.stage, "after-temp-write")
         artifacts = {p.stem: _describe(p) for p in sorted(self.path.iterdir())}
         _fsync_tree(self.path)
+        fault(self.stage, "before-rename")
         os.rename(self.path, root / final)
+        fault(self.stage, "after-rename")
         stages = manifest["stages"]
         stale = [stages.pop(s)["dir"] for s in (self.stage, *DOWNSTREAM[self.stage]) if s in stages]
         stages[self.stage] = {
@@ -199,13 +253,14 @@ class StageWriter:
             "peak_rss": peak_rss(),
         }
         manifest["format_version"] = FORMAT_VERSION
+        fault(self.stage, "before-manifest")
         try:
             _write_json_atomic(root / MANIFEST, manifest)
         except OSError:  # not committed after all (disk full): leave no orphan directory
             shutil.rmtree(root / final, ignore_errors=True)
             raise
-        for old in stale:
-            shutil.rmtree(root / old, ignore_errors=True)
+        held = str(root.resolve()) in _HELD
+        _remove_unread(root, _orphans(root, manifest) if held else stale)
         _remove_if_empty(root / STAGING)
 
 
@@ -271,10 +326,7 @@ def _fsync_tree(path):
 
 def _sweep_staging(staging):
     """Remove staging directories (and manifest temporaries) left by processes that no longer run."""
-    for tmp in staging.parent.glob(f".{MANIFEST}.*.tmp"):
-        pid = tmp.name.split(".")[-2]
-        if pid.isdigit() and not _alive(int(pid)):
-            tmp.unlink(missing_ok=True)
+    sweep_temps(staging.parent)
     if not staging.is_dir():
         return
     for leftover in staging.iterdir():
@@ -284,24 +336,50 @@ def _sweep_staging(staging):
             shutil.rmtree(leftover, ignore_errors=True)
 
 
-def _sweep_orphans(root, manifest):
-    """Remove stage directories the manifest does not name: left by a process killed between
-    renaming its stage into place and committing the manifest. Only safe under the lock."""
+def _orphans(root, manifest):
+    """Stage directories the manifest does not name: superseded ones whose removal was deferred,
+    or left by a process killed between renaming its stage in and committing the manifest.
+    Only the lock holder may remove them (another writer's may not be committed yet)."""
     named = {entry["dir"] for entry in manifest["stages"].values()}
+    found = []
     for path in root.iterdir():
         stage, _, token = path.name.partition("-")
         if (path.is_dir() and stage in DOWNSTREAM and len(token) == 12 and path.name not in named):
-            shutil.rmtree(path, ignore_errors=True)
+            found.append(path.name)
+    return found
 
 
-def _alive(pid):
+def _share(root):
+    """A descriptor holding a shared flock on directory ``root`` (None when it does not exist).
+
+    Blocks only while a writer removes superseded stage directories."""
     try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
+        fd = os.open(root, os.O_RDONLY | os.O_DIRECTORY)
+    except (FileNotFoundError, NotADirectoryError):
+        return None
+    try:
+        fcntl.flock(fd, fcntl.LOCK_SH)
+    except BaseException:
+        os.close(fd)
+        raise
+    return fd
+
+
+def _remove_unread(root, names):
+    """Remove stage directories ``names`` of ``root`` unless a reader holds the store (then
+    leave them for a later writer): never waits."""
+    if not names:
+        return
+    fd = os.open(root, os.O_RDONLY | os.O_DIRECTORY)
+    try:
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            return  # a reader may have pinned one of them
+        for name in names:
+            shutil.rmtree(root / name, ignore_errors=True)
+    finally:
+        os.close(fd)
 
 
 def _remove_if_empty(path):

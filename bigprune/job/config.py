@@ -19,7 +19,7 @@ Example::
 
     [[select]]
     strategy = "kmedian"
-    budget = 0.02
+    budget = 0.02                # a float is a fraction of the pool (1.0 = all), an int a count
     out = "selections/kmedian.parquet"
 
     [study]                      # optional: see bigprune.learning.study
@@ -30,7 +30,8 @@ import tomllib
 from pathlib import Path
 
 from ..common.errors import InputError
-from ..common.memory import DEFAULT_BUDGET
+from ..common.memory import DEFAULT_BUDGET, parse_size
+from ..common.options import Names, read_budget
 
 # key: (type, required, default); "path" values are resolved against the file's folder.
 TOP = {"store": ("path", True, None), "memory_budget": ("size", False, DEFAULT_BUDGET),
@@ -57,7 +58,7 @@ _CHECKS = {
     "bool": lambda v: isinstance(v, bool),
     "str": lambda v: isinstance(v, str),
     "path": lambda v: isinstance(v, str) and v != "",
-    "size": lambda v: isinstance(v, (str, int)) and not isinstance(v, bool),
+    "size": lambda v: isinstance(v, (str, int)) and not isinstance(v, bool),  # int: refused with the units
     "numbers": lambda v: isinstance(v, list) and v != [] and all(_CHECKS["number"](x) for x in v),
     "strs": lambda v: isinstance(v, list) and v != [] and all(isinstance(x, str) for x in v),
 }
@@ -100,11 +101,37 @@ def load_job(path):
         if value is not None and not isinstance(value, dict):
             raise InputError(f"{path}: {name!r} must be a table [{name}]")
         job[name] = None if value is None else _section(path, f"[{name}]", value, spec, base)
+    _check_meanings(path, job)
     outs = [entry["out"] for entry in job["select"]]
     if len(set(outs)) != len(outs):
         raise InputError(f"{path}: two [[select]] tables write the same out file")
     job["path"] = str(path)
     return job
+
+
+def select_names(path, index):
+    """How errors name the keys of the ``index``-th (from 0) ``[[select]]`` table."""
+    return Names(f"{path}: [[select]] #{index + 1}:")
+
+
+def study_names(path):
+    """How errors name the keys of the ``[study]`` table."""
+    return Names(f"{path}: [study]:")
+
+
+def _check_meanings(path, job):
+    """Values whose meaning needs no data: the memory budget's unit and every budget's rule
+    (a TOML float is a fraction in (0, 1], an int a count)."""
+    parse_size(str(job["memory_budget"]), f"{path}: top level: memory_budget =")
+    for index, entry in enumerate(job["select"]):
+        names = select_names(path, index)
+        for key in ("budget", "min_per_class"):
+            if entry[key] is not None:
+                read_budget(entry[key], key, names)
+    if job["study"] is not None:
+        from ..learning.study import parse_budgets
+
+        parse_budgets(job["study"]["budgets"], study_names(path))
 
 
 def _section(path, where, values, spec, base, skip=()):

@@ -4,16 +4,17 @@ A stage runs when the store lacks it or when its inputs (fingerprints) or parame
 whatever it feeds runs again after it. Each stage commits atomically, so a job killed at any
 point resumes on the next run. One JSON line per stage goes to the log for the scheduler.
 """
-import json
 import time
 from pathlib import Path
 
-from .config import load_job
+from .config import load_job, select_names, study_names
 from ..common.errors import BigpruneError, InputError
 from ..common.fingerprint import fingerprints, key
+from ..common.jsonout import dumps
 from ..common.memory import peak_rss
 from ..common.sources import edge_files
 from ..common.store import Store
+from ..common.faults import fault
 
 
 def plan_job(job):
@@ -113,11 +114,17 @@ def run_job(path, dry_run=False, echo=print):
     log = Path(job["log"]) if job["log"] else Path(job["store"]).parent / "bigprune-log.jsonl"
     with store.locked():
         steps = plan_job(job)
+        checked = False
         for step in steps:
             if not step["run"]:
                 _log(log, step, "skipped", time.time(), {})
                 echo(f"skip  {step['stage']:<40} {step['why']}")
                 continue
+            if not checked and step["stage"].startswith(("select", "study")):
+                # the same checks as `bigprune check`, on the graph now committed, so that an
+                # error names the job file's entry before any selection is computed
+                _check_selections(job, _store_nodes(store))
+                checked = True
             echo(f"run   {step['stage']:<40} {step['why']}")
             started = time.time()
             try:
@@ -134,6 +141,7 @@ def run_job(path, dry_run=False, echo=print):
                     Path(entry["out"]).parent.mkdir(parents=True, exist_ok=True)
                     result = _run_select(store, entry, opts)
                     lists = fingerprints([entry[k] for k in ("include", "exclude") if entry[k]])
+                    fault("select", "before-manifest")
                     store.record_output(entry["out"], key(step["params"], _comparable({"lists": lists}),
                                                           store.entry("propagate")["dir"]))
             except BigpruneError as exc:
@@ -168,6 +176,7 @@ def _run_study(store, step, opts):
                    repeats=entry["repeats"], answers=entry["answers"], tolerance=entry["tolerance"],
                    targets=entry["targets"], **opts)
     # keyed with the features now committed, which plan_job compares against on the next run
+    fault("study", "before-manifest")
     store.record_output(Path(entry["out"]) / "study.json",
                         key(step["params"], store.entry("propagate")["dir"]))
     return {"cells_run": result["cells"]["run"], "best": result["recommendation"]["best"]}
@@ -185,7 +194,7 @@ def _log(path, step, outcome, started, extra):
               "seconds": round(time.time() - started, 3), "peak_rss": peak_rss(), **extra}
     path.parent.mkdir(parents=True, exist_ok=True)
     with open(path, "a") as fh:
-        fh.write(json.dumps(record) + "\n")
+        fh.write(dumps(record) + "\n")
 
 
 def _comparable(inputs):
@@ -207,7 +216,10 @@ def _what_changed(old, new):
 
 
 def check_job(path, echo=print):
-    """Validate the job file and the inputs' schemas, ids and splits without computing."""
+    """Every check ``run`` makes, without computing: the job file, the inputs' schemas, ids and
+    splits, and each selection's and the study's options against the training pool read from
+    the node table (budget, quotas, include and exclude files, radius, targets, study budgets).
+    Returns what was checked (a JSON-ready dict)."""
     from ..ingestion.edges import EdgeFiles
     from ..ingestion.nodetable import NodeTable
 
@@ -217,34 +229,111 @@ def check_job(path, echo=print):
         raise InputError(f"--nodes {ingest['nodes']}: no such file")
     table = NodeTable(ingest["nodes"], needs_features=ingest["features"] is None).load()
     edges = EdgeFiles(edge_files(ingest["edges"]), table.id_kind)
+    checked = _check_selections(job, (table.id_array(), table.split, table.label))
+    result = {"ok": True, "job": str(path), "nodes": int(table.rows), "edge_rows": int(edges.rows),
+              "edge_files": len(edges.files), **checked}
+    echo(f"ok: {table.rows:,} nodes, {edges.rows:,} edge rows in {len(edges.files)} file(s), "
+         f"training pool {checked['pool']:,}, {len(job['select'])} selection(s)")
+    return result
+
+
+def _store_nodes(store):
+    """(ids, split, label) of the committed graph stage."""
+    from ..common.ids import store_ids
+
+    return (store_ids(store), store.load("graph", "split", mmap=False),
+            store.load("graph", "label", mmap=False))
+
+
+def _check_selections(job, nodes):
+    """Check every ``[[select]]`` table and the ``[study]`` table against the graph's nodes
+    ``(ids, split, label)``, naming the job file's entry; return the picks each would make."""
+    import numpy as np
+
+    from ..common.schema import NO_LABEL, SPLIT_CODES
+    from ..learning.study import check_budget_sizes, parse_budgets, parse_strategies
+    from ..selection.select import TARGETS, check_constraints, check_radius
     from ..selection.strategies import STRATEGIES
 
-    for entry in job["select"]:
-        if entry["strategy"] not in STRATEGIES:
-            raise InputError(f"{path}: [[select]] strategy {entry['strategy']!r} is unknown "
-                             f"(choose from {', '.join(STRATEGIES)})")
+    ids, split, label = nodes
+    whole_pool = np.flatnonzero((split == SPLIT_CODES["train"]) & (label != NO_LABEL)).astype(np.int64)
+    path = job["path"]
+    if len(whole_pool) == 0 and (job["select"] or job["study"]):
+        raise InputError(f"{path}: [ingest]: nodes = {job['ingest']['nodes']!r}: no labelled node "
+                         f"has split train, so the training pool is empty; mark training nodes in "
+                         f"the node table's split column")
+    selections = []
+    for index, entry in enumerate(job["select"]):
+        names = select_names(path, index)
+        _check_choice(names, "strategy", entry["strategy"], STRATEGIES)
+        _check_targets(names, entry["targets"], split, TARGETS)
+        radius = check_radius(entry["radius"], entry["strategy"], entry["budget"], names)
+        include = entry["include"]
+        if entry["keep_previous"] and Path(entry["out"]).exists():
+            if include:
+                raise InputError(f"{names.where} use keep_previous or include, not both")
+            include = entry["out"]
+        _, k, _, _, _ = check_constraints(ids, label, whole_pool, entry["budget"], radius, include,
+                                          entry["exclude"], entry["min_per_class"], names)
+        selections.append({"out": entry["out"], "strategy": entry["strategy"],
+                           "picks": None if radius is not None else int(k)})
+    result = {"pool": int(len(whole_pool)), "selections": selections}
     study = job.get("study")
-    for name in (study or {}).get("strategies") or ():
-        if name not in STRATEGIES:
-            raise InputError(f"{path}: [study] strategy {name!r} is unknown "
-                             f"(choose from {', '.join(STRATEGIES)})")
-    echo(f"ok: {table.rows:,} nodes, {edges.rows:,} edge rows in {len(edges.files)} file(s), "
-         f"{len(job['select'])} selection(s)")
-    return job
+    if study:
+        names = study_names(path)
+        for name in study["strategies"] or ():
+            _check_choice(names, "strategies", name, STRATEGIES)
+        parse_strategies(study["strategies"], STRATEGIES)
+        _check_targets(names, study["targets"], split, TARGETS)
+        sizes = check_budget_sizes(parse_budgets(study["budgets"], names), len(whole_pool), names)
+        result["study"] = {"out": study["out"], "picks": [int(k) for _, k in sizes] + [len(whole_pool)]}
+    return result
 
 
-def store_status(path):
-    """A few lines: each committed stage with its parameters, inputs and time; the outputs."""
+def _check_choice(names, key, value, known):
+    if value not in known:
+        raise InputError(f"{names.label(key, value)} is unknown (choose from {', '.join(known)})")
+
+
+def _check_targets(names, targets, split, codes):
+    import numpy as np
+
+    if targets not in codes:
+        raise InputError(f"{names.label('targets', targets)} is unknown (choose from {', '.join(codes)})")
+    if not np.any(split == codes[targets]):
+        others = ", ".join(t for t in codes if t != targets)
+        raise InputError(f"{names.label('targets', targets)}: no node is in this set; choose "
+                         f"another ({others})")
+
+
+def store_state(path):
+    """What the store holds, JSON-ready: each committed stage (parameters, input file count,
+    commit time, seconds) and each recorded output."""
     store = Store(path)
     if not (store.path / "manifest.json").exists():
         raise InputError(f"--store {path}: no store here (no manifest.json)")
     manifest = store.manifest()
-    lines = [f"store {store.path} (format {manifest['format_version']})"]
+    stages = {}
     for name, entry in manifest["stages"].items():
-        files = sum(len(v) for v in entry.get("inputs", {}).values())
+        # inputs map a name to a list of file fingerprints, or to the upstream stage's directory
+        # (a string, whose length is no file count)
+        files = sum(len(v) for v in entry.get("inputs", {}).values() if isinstance(v, list))
+        stages[name] = {"committed_at": entry["committed_at"], "seconds": entry["seconds"],
+                        "input_files": files, "params": entry["params"]}
+    outputs = {out: {"committed_at": entry["committed_at"]}
+               for out, entry in manifest.get("outputs", {}).items()}
+    return {"store": str(store.path), "format_version": manifest["format_version"],
+            "stages": stages, "outputs": outputs}
+
+
+def store_status(path):
+    """A few lines: each committed stage with its parameters, inputs and time; the outputs."""
+    state = store_state(path)
+    lines = [f"store {state['store']} (format {state['format_version']})"]
+    for name, entry in state["stages"].items():
         params = ", ".join(f"{k}={v}" for k, v in entry["params"].items() if v is not None)
         lines.append(f"  {name:<10} {entry['committed_at']}  {entry['seconds']:>8.1f} s  "
-                     f"{files} input file(s)  {params}")
-    for out, entry in manifest.get("outputs", {}).items():
+                     f"{entry['input_files']} input file(s)  {params}")
+    for out, entry in state["outputs"].items():
         lines.append(f"  output     {entry['committed_at']}  {out}")
     return "\n".join(lines)

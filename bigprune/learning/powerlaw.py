@@ -16,7 +16,8 @@ def fit_power_law(n, error, bootstrap=1000, seed=0, level=0.95):
     Returns
     -------
     dict with ``alpha``, ``a``, ``r2``, ``alpha_low``, ``alpha_high``, ``points``, ``dropped``;
-    NaN where fewer than two distinct sizes remain.
+    NaN where fewer than two distinct sizes remain, and then ``reason`` says so (JSON outputs
+    write NaN as null).
     """
     n = np.asarray(n, dtype=np.float64)
     error = np.asarray(error, dtype=np.float64)
@@ -24,7 +25,8 @@ def fit_power_law(n, error, bootstrap=1000, seed=0, level=0.95):
     x, y = np.log(n[keep]), np.log(error[keep])
     result = {"points": int(keep.sum()), "dropped": int((~keep).sum())}
     if np.unique(x).size < 2:
-        return {**result, **dict.fromkeys(("alpha", "a", "r2", "alpha_low", "alpha_high"), float("nan"))}
+        return {**result, **dict.fromkeys(("alpha", "a", "r2", "alpha_low", "alpha_high"), float("nan")),
+                "reason": "fewer than two distinct training-set sizes with an error above 0"}
     slope, intercept, r2 = _line(x, y)
     rng = np.random.default_rng(seed)
     slopes = []

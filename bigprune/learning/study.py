@@ -3,7 +3,7 @@
 For every rule, budget and repeat (a *cell*) the rule picks a subset of the training pool, the
 proxy (:mod:`bigprune.learning.proxy`) is trained on it in the selection embedding (the last propagated
 hop), and it is scored on held-out labelled nodes: the targets' answers when a file of them is
-given, else the ``valid`` split. Budget 1 is the full pool, the reference accuracy. The proxy's
+given, else the ``valid`` split. Budget 1.0 is the full pool, the reference accuracy. The proxy's
 L2 penalty is chosen per cell on the ``valid`` split (:func:`bigprune.learning.proxy.fit_tuned`)
 unless one is given.
 
@@ -24,8 +24,10 @@ from pathlib import Path
 import numpy as np
 
 from ..common.errors import BudgetError, InputError
+from ..common.options import FLAGS, read_budget
 from ..common.ids import lookup, read_id_file
 from ..common.fingerprint import key
+from ..common.jsonout import dumps
 from ..common.memory import DEFAULT_BUDGET, FIXED_OVERHEAD, chunk_ranges, format_size, parse_size, \
     rows_per_chunk
 from .powerlaw import fit_power_law, smallest_sufficient
@@ -33,6 +35,9 @@ from .proxy import DEFAULT_L2, L2_GRID
 from ..common.runtime import progress, set_threads
 from ..common.schema import NO_LABEL, SPLIT_CODES
 from ..common.store import Store
+from ..common.store import reads_store
+from ..common.faults import fault
+from ..common.tempfiles import sweep_temps
 
 DEFAULT_BUDGETS = (0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1.0)
 DEFAULT_REPEATS = 3
@@ -53,6 +58,7 @@ ONE_THREAD = {name: "1" for name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", 
                                      "NUMBA_NUM_THREADS")}
 
 
+@reads_store
 def study(store, out, budgets=DEFAULT_BUDGETS, strategies=None, repeats=DEFAULT_REPEATS,
           answers=None, tolerance=DEFAULT_TOLERANCE, targets="test", l2=None, standardize=False,
           memory_budget=DEFAULT_BUDGET, threads=None):
@@ -62,8 +68,9 @@ def study(store, out, budgets=DEFAULT_BUDGETS, strategies=None, repeats=DEFAULT_
     ----------
     store : Store or path, with committed graph and propagate stages.
     out : path of a directory outside the store (created).
-    budgets : sequence or comma-separated text of fractions in (0, 1] of the pool or whole
-        counts >= 2; 1 is the full pool and is always run (it is the reference).
+    budgets : sequence or comma-separated text, by the budget rule of ``select``: fractions in
+        (0, 1] of the pool (floats, or text with a decimal point or %) or counts (ints, or
+        integer text); 1.0 is the full pool and is always run (it is the reference).
     strategies : sequence or comma-separated text of rule names (default: ``DEFAULT_RULES``).
     repeats : int >= 1; repeat ``r`` selects with seed ``r``.
     answers : Parquet file (node_id, label) of held-out nodes, or None for the ``valid`` split.
@@ -115,21 +122,15 @@ def parse_strategies(value, known):
     return list(dict.fromkeys(names))
 
 
-def parse_budgets(value):
-    """Budgets from a sequence or comma-separated text: floats in (0, 1] or ints >= 2."""
-    from ..selection.select import fraction_or_count  # here: selection imports learning (hardness -> proxy)
-
+def parse_budgets(value, names=FLAGS):
+    """Budgets from a sequence or comma-separated text, by the one budget rule
+    (:mod:`bigprune.common.options`): floats are fractions in (0, 1] (1.0 = the whole pool),
+    ints counts >= 1."""
     items = value.split(",") if isinstance(value, str) else list(value)
     if not items:
-        raise InputError("--budgets: give at least one budget, e.g. 0.01,0.1,1")
-    budgets = []
-    for item in items:
-        number = fraction_or_count(item)
-        if number is None:
-            raise InputError(f"--budgets {str(item).strip()}: use fractions in (0, 1] of the "
-                             f"training pool (1 = the whole pool) or whole counts >= 2")
-        budgets.append(number if number <= 1 else int(number))
-    return budgets
+        raise InputError(f"{names.hint('budgets')}: give at least one budget, e.g. 0.01,0.1,1.0")
+    return [read_budget(item.strip() if isinstance(item, str) else item, "budgets", names).number
+            for item in items]
 
 
 def recommend(rows, tolerance):
@@ -223,7 +224,7 @@ def _setup(store, answers, budgets, rules, repeats, targets, l2, standardize):
     hops = int(store.entry("propagate")["params"]["hops"])
     embedding = store.stage_dir("propagate") / f"hop_{hops}.npy"
     width = int(np.load(embedding, mmap_mode="r").shape[1])
-    sizes = _sizes(budgets, len(pool))
+    sizes = check_budget_sizes(budgets, len(pool))
     base = {"graph": store.entry("graph")["dir"], "propagate": store.entry("propagate")["dir"],
             "targets": targets, "hop": hops, "standardize": standardize,
             "l2": l2 if l2 is not None else {"grid": [float(g) for g in L2_GRID],
@@ -264,14 +265,16 @@ def _l2_policy(l2, tune_rows, answers, eval_rows):
     return f"{chosen}; the answers are scored apart from that choice."
 
 
-def _sizes(budgets, pool):
-    """(budget, k) for each budget below the full pool, sorted by k; duplicates of k dropped."""
+def check_budget_sizes(budgets, pool, names=FLAGS):
+    """(budget, k) for each budget below the full pool, sorted by k; duplicates of k dropped.
+
+    ``budgets`` as :func:`parse_budgets` returns them; ``pool`` the training pool's size."""
     seen = {}
     for budget in budgets:
-        k = budget if isinstance(budget, int) else max(1, int(round(budget * pool)))
+        k = read_budget(budget).picks(pool)
         if k > pool:
-            raise InputError(f"--budgets {budget}: larger than the training pool ({pool} nodes); "
-                             f"use at most {pool} or a fraction")
+            raise InputError(f"{names.label('budgets', budget)}: larger than the training pool "
+                             f"({pool} nodes); use at most {pool} or a fraction such as 1.0")
         if k < pool:
             seen.setdefault(k, budget)
     return sorted(((b, k) for k, b in seen.items()), key=lambda item: item[1])
@@ -312,6 +315,8 @@ def _study(setup, out, tolerance, memory, threads):
 
     folder = out / "cells"
     folder.mkdir(parents=True, exist_ok=True)
+    sweep_temps(out)  # left by a study killed while writing
+    sweep_temps(folder)
     done = {c["name"]: _read_cell(folder / f"{c['name']}.json", c["key"]) for c in setup["cells"]}
     todo = [c for c in setup["cells"] if done[c["name"]] is None]
     workers, per_worker = _plan_workers(setup, len(todo), memory, threads)
@@ -321,6 +326,7 @@ def _study(setup, out, tolerance, memory, threads):
                "standardize": setup["standardize"], "tune_rows": setup["tune_rows"],
                "tune_truth": setup["tune_truth"],
                "memory": per_worker, "threads": 1 if workers > 1 else threads}
+    context["manifest"] = setup["store"].manifest()  # this process's pin: every cell reads one commit
     with progress(total=len(todo), desc="study", unit="cell") as bar:
         for cell, result in _run_all(todo, context, workers):
             record = {"key": cell["key"], "cell": {k: cell[k] for k in ("rule", "budget", "k", "repeat", "seed")},
@@ -427,7 +433,7 @@ def _run_cell(cell):
 
     started = time.perf_counter()
     ctx = _WORKER
-    store = Store(ctx["store"])
+    store = Store(ctx["store"], manifest=ctx["manifest"])  # the study holds the store meanwhile
     result = {}
     if cell["rule"] == FULL:
         rows = ctx["pool"]
@@ -492,10 +498,13 @@ def _write_json(path, payload):
     tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
     try:
         with open(tmp, "w") as fh:
-            json.dump(payload, fh, indent=1)
+            fh.write(dumps(payload, indent=1))
             fh.flush()
             os.fsync(fh.fileno())
+        fault("study", "after-temp-write")
+        fault("study", "before-rename")
         os.replace(tmp, path)
+        fault("study", "after-rename")
     finally:
         tmp.unlink(missing_ok=True)
 

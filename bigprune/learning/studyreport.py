@@ -7,16 +7,17 @@ self-contained HTML (plots inlined as base64 PNG) always say the same. Plots nee
 import base64
 import html
 import io
-import json
 import math
 import os
 from pathlib import Path
 
 import numpy as np
 
+from ..common.jsonout import dumps
+
 CAUTION = ("A subset that matches the full pool's overall accuracy can still do worse on the "
-           "classes and sub-groups it holds few examples of: a small department or a quiet "
-           "neighbourhood may lose many points while the average moves by less than the "
+           "classes and sub-groups it holds few examples of: a rare class or a small community "
+           "of the graph may lose many points while the average moves by less than the "
            "tolerance. Read the per-class table below, and check the groups that matter to you, "
            "before training the production model on a pruned set.")
 CURVES, PER_CLASS, PREFERENCE = "error_curves.png", "per_class.png", "preference.png"
@@ -33,8 +34,8 @@ def write_outputs(out, rows, summary):
              "summary": out / "study.json", "markdown": out / "report.md", "html": out / "report.html"}
     _atomic(paths["table"], lambda p: _parquet(p, table))
     _atomic(paths["csv"], lambda p: _csv(p, table))
-    _atomic(paths["fits"], lambda p: p.write_text(json.dumps(summary["fits"], indent=2)))
-    _atomic(paths["summary"], lambda p: p.write_text(json.dumps(summary, indent=2, default=str)))
+    _atomic(paths["fits"], lambda p: p.write_text(dumps(summary["fits"], indent=2)))
+    _atomic(paths["summary"], lambda p: p.write_text(dumps(summary, indent=2)))
     images = _plots(rows, summary, classes)
     for name, png in images.items():
         paths[name.split(".")[0]] = out / name
@@ -96,12 +97,10 @@ def per_class_at(rows, rule, nodes, classes):
 
 # ---- plots -------------------------------------------------------------------------------------
 def _plots(rows, summary, classes):
-    """PNG bytes by file name; empty when matplotlib is missing."""
-    try:
-        from matplotlib.backends.backend_agg import FigureCanvasAgg
-        from matplotlib.figure import Figure
-    except ImportError:
-        return {}
+    """PNG bytes by file name."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
     rec = summary["recommendation"]
     colours = {rule: f"C{i % 10}" for i, rule in enumerate(summary["fits"])}
     fig = Figure(figsize=(7, 4.8))
@@ -239,7 +238,7 @@ def report_blocks(rows, summary, classes, images):
     blocks.append(("table", ["rule", "alpha", "95% interval", "a", "R²", "points"],
                    [[rule, _num(f["alpha"]), f"{_num(f['alpha_low'])} to {_num(f['alpha_high'])}",
                      _num(f["a"]), _num(f["r2"]), str(f["points"])] for rule, f in fits.items()]))
-    blocks += _image(images, CURVES, "Error against training nodes, log-log")
+    blocks.append(("img", CURVES, images[CURVES], "Error against training nodes, log-log"))
 
     blocks.append(("h2", "Per-class accuracy at the recommended budget"))
     blocks.append(("p", CAUTION))
@@ -256,7 +255,7 @@ def report_blocks(rows, summary, classes, images):
         body.append(line)
     blocks.append(("table", header, body))
     blocks.append(("p", "\"(lower)\" marks a class more than the tolerance below the full pool."))
-    blocks += _image(images, PER_CLASS, "Per-class accuracy")
+    blocks.append(("img", PER_CLASS, images[PER_CLASS], "Per-class accuracy"))
 
     blocks.append(("h2", "What the subsets look like"))
     diag = summary["diagnostics"]
@@ -294,13 +293,6 @@ def _preference_blocks(preferences, images):
             body.append([rule, title] + [_num(p[name]) for p in parts] + [_num(pool.get(name))])
     blocks.append(("table", header, body))
     return blocks + _image(images, PREFERENCE, "What each rule prefers, by fifths of its ranking")
-
-
-def _image(images, name, alt):
-    if name in images:
-        return [("img", name, images[name], alt)]
-    return [("p", f"Plot {name} skipped: matplotlib is not installed "
-                  f"(pip install 'bigprune[plot]').")]
 
 
 def _num(value):

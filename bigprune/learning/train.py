@@ -11,8 +11,10 @@ from .proxy import evaluate, fit_tuned
 from ..common.runtime import set_threads
 from ..common.schema import NO_LABEL, SPLIT_CODES
 from ..common.store import Store
+from ..common.store import reads_store
 
 
+@reads_store
 def train(store, nodes_from=None, answers=None, l2=None, hop=None, standardize=False,
           memory_budget=DEFAULT_BUDGET, threads=None):
     """Train the proxy on ``nodes_from`` (a selection's Parquet file) or the whole pool.

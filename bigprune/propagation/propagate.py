@@ -75,7 +75,9 @@ def propagate(store, hops=2, norm="sym", memory_budget=DEFAULT_BUDGET, threads=N
                          f"{MAX_RESTRICTED_HOPS}, or --no-restrict")
     budget = parse_size(memory_budget)
     threads = set_threads(threads)
-    return _propagate(store, hops, norm, budget, threads, dtype, bool(restrict))
+    store.entry("graph")  # no store, no graph: refused before the lock would create a folder
+    with store.locked():  # one writer at a time: a job's sweep must not take this run's directory
+        return _propagate(store, hops, norm, budget, threads, dtype, bool(restrict))
 
 
 def embedding(store, hop=None):

@@ -21,9 +21,11 @@ DEMO_STRATEGIES = ("kmedian", "kmeans", "kcenter", "random", "degree", "pagerank
 # accuracy point of the full pool, scored on this week's answers. The rungs reach 0.2 because on
 # 100k listings no rule comes within the point below 0.05; two repeats keep the demo near a
 # minute (kmedian and the k-supplier greedy ignore the seed and run once per budget).
-DEMO_STUDY = {"strategies": ("kmedian", "kcenter", "random"), "budgets": (0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 1),
+DEMO_STUDY = {"strategies": ("kmedian", "kcenter", "random"), "budgets": (0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 1.0),
               "repeats": 2, "tolerance": 0.01}
 STAMP = "demo-params.json"
+# Marks a work folder as the demo's own: only such a folder (or an empty one) is written over.
+MARKER = ".bigprune-demo"
 
 
 def demo(workdir, nodes=None, seed=0, memory_budget=DEFAULT_BUDGET, threads=None, echo=print):
@@ -35,8 +37,7 @@ def demo(workdir, nodes=None, seed=0, memory_budget=DEFAULT_BUDGET, threads=None
     if nodes < 1000:
         raise InputError(f"--nodes {nodes}: the demo needs at least 1000 listings")
     root = Path(workdir)
-    if root.exists() and not root.is_dir():
-        raise InputError(f"--workdir {workdir}: exists and is not a directory")
+    _claim(root, workdir)
     started = time.time()
     data = root / "data"
     params = {"nodes": nodes, "seed": seed}
@@ -76,6 +77,21 @@ def demo(workdir, nodes=None, seed=0, memory_budget=DEFAULT_BUDGET, threads=None
     return reports
 
 
+def _claim(root, given):
+    """Make ``root`` the demo's folder: refuse a file, or a non-empty folder without the marker
+    (the user's own files, which the demo would overwrite); mark a new or empty one."""
+    if root.exists() and not root.is_dir():
+        raise InputError(f"--workdir {given}: exists and is not a directory")
+    if (root / MARKER).is_file():
+        return
+    if root.is_dir() and any(root.iterdir()):
+        raise InputError(f"--workdir {given}: folder is not empty and was not made by bigprune demo "
+                         f"(no {MARKER} file); the demo would overwrite what is there, so give a new "
+                         f"or empty folder")
+    root.mkdir(parents=True, exist_ok=True)
+    (root / MARKER).write_text("made by bigprune demo, which may overwrite anything in this folder\n")
+
+
 def _job_text(memory_budget, threads, seed):
     lines = ['# Written by bigprune demo; rerun with: bigprune run job.toml', 'store = "store"',
              f'memory_budget = "{memory_budget}"']
@@ -88,7 +104,7 @@ def _job_text(memory_budget, threads, seed):
                   f'out = "selections/{strategy}.parquet"']
     quoted = ", ".join(f'"{s}"' for s in DEMO_STUDY["strategies"])
     lines += ["", "[study]", 'out = "study"', f"strategies = [{quoted}]",
-              f"budgets = [{', '.join(f'{b:g}' for b in DEMO_STUDY['budgets'])}]",
+              f"budgets = [{', '.join(repr(b) for b in DEMO_STUDY['budgets'])}]",  # 1.0 = the pool
               f"repeats = {DEMO_STUDY['repeats']}", f"tolerance = {DEMO_STUDY['tolerance']}",
               'answers = "data/answers.parquet"']
     return "\n".join(lines) + "\n"

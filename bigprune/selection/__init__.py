@@ -1,2 +1,4 @@
-"""The select stage: strategies, the k-center greedy, hardness scores and the selection report."""
+"""The select stage: the rules (k-median, k-means, k-center, hardness, ...) and the selection report."""
 from .select import select
+
+__all__ = ["select"]

@@ -99,7 +99,8 @@ def _index(candidates, nearest):
     index.train(candidates[np.sort(rng.choice(n, size=min(n, 32 * nlist), replace=False))])
     index.add(np.ascontiguousarray(candidates))
     index.nprobe = min(nlist, NPROBE)
-    index.quantizer_keepalive = quantizer  # the index does not own its quantizer
+    # FAISS's Python constructor keeps the quantizer alive (index.referenced_objects); faiss
+    # 1.15 refuses unknown attributes on its objects, so no keep-alive attribute is set here.
     return index, {"index": "ivf", "nlist": int(nlist), "nprobe": int(index.nprobe),
                    "neighbours": int(nearest)}
 

@@ -2,7 +2,6 @@
 
 ``select()`` validates everything and plans memory; ``_select()`` trusts its inputs and works.
 """
-import json
 import math
 import os
 import shutil
@@ -13,7 +12,9 @@ from pathlib import Path
 import numpy as np
 
 from ..common.errors import BudgetError, InputError
-from ..common.ids import lookup, read_id_file
+from ..common.ids import lookup, lookup_in, read_id_file, store_ids
+from ..common.jsonout import dumps
+from ..common.options import FLAGS, read_budget
 from ..common.memory import FIXED_OVERHEAD, format_size, parse_size, peak_rss, rows_per_chunk, working_memory
 from .report import CAUTION, changes, class_counts, coverage, diagnostics, ranking_profile
 from ..common.runtime import set_threads
@@ -21,6 +22,9 @@ from .kcenter import GROUP_ROWS, PRODUCT_ITEMS, cover
 from ..common.schema import NO_LABEL, NO_SPLIT, SPLIT_CODES
 from ..common.store import STAGING, Store
 from .hardness import DDD_MEMBERS
+from ..common.store import reads_store
+from ..common.faults import fault
+from ..common.tempfiles import sweep_temps
 from .strategies import NEEDS_POOL_ROWS, NEEDS_PROXY, STRATEGIES, Problem
 
 # Which nodes each ``--targets`` choice means: split codes.
@@ -29,6 +33,7 @@ TARGETS = {"test": SPLIT_CODES["test"], "valid": SPLIT_CODES["valid"], "unlabele
 PROXY_ROW_COPIES = 4
 
 
+@reads_store
 def select(store, strategy, budget=None, targets="test", seed=0, out=None, memory_budget="4GiB",
            threads=None, embedding_hop=None, initial=None, include=None, exclude=None,
            min_per_class=None, radius=None, ensemble=None):
@@ -38,8 +43,9 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
     ----------
     store : Store or path, with committed graph and propagate stages.
     strategy : str, one of ``STRATEGIES``.
-    budget : float in (0, 1) (a share of the training pool, before any exclusion) or int >= 1
-        (a count); strings are parsed. Required unless ``radius`` is given.
+    budget : float in (0, 1] (a share of the training pool, before any exclusion) or int >= 1
+        (a count); text follows the same rule (``"0.05"``, ``"5%"``, ``"1.0"`` are fractions,
+        ``"1"``, ``"5000"`` counts: :mod:`bigprune.common.options`). Required unless ``radius``.
     targets : ``"test"``, ``"valid"`` or ``"unlabeled"`` (nodes with no split).
     seed : int. out : path ending in ``.parquet`` outside the store, or None (nothing written).
     memory_budget : size such as ``"4GiB"``. threads : int or None (all available cores).
@@ -49,8 +55,8 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
         pool nodes are kept and chosen first (the greedy's starting centres). Not with ``initial``.
     exclude : path, same format: these nodes are never chosen (ids of graph nodes outside the
         training pool are allowed and counted).
-    min_per_class : int >= 1, or a fraction (0, 1) of the budget (rounded up): each class of the
-        pool gets at least that many picks, capped at its pool size.
+    min_per_class : int >= 1, or a fraction (0, 1] of the budget (rounded up), by the budget's
+        rule: each class of the pool gets at least that many picks, capped at its pool size.
     radius : float >= 0 or None; ``kcenter`` only, instead of ``budget``: the fewest greedy picks
         that bring every target within ``radius`` (plus any quota picks).
     ensemble : even int >= 2 or None; ``ddd`` only: the proxies in its ensemble (default
@@ -67,7 +73,7 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
         raise InputError(f"--strategy {strategy}: unknown; use one of {', '.join(STRATEGIES)}")
     if targets not in TARGETS:
         raise InputError(f"--targets {targets}: unknown; use one of {', '.join(TARGETS)}")
-    radius = _check_radius(radius, strategy, budget)
+    radius = check_radius(radius, strategy, budget)
     ensemble = _check_ensemble(ensemble, strategy)
     if include is not None and initial is not None:
         raise InputError(f"--include {include}: give either an include file or initial ids, not both")
@@ -102,7 +108,7 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
         scratch = store.path / STAGING / f"select-{os.getpid()}-{uuid.uuid4().hex[:8]}"
         scratch.mkdir(parents=True)
         chunk = (*chunk, scratch)
-    given = budget if isinstance(budget, (int, float, str)) or budget is None else str(budget)
+    given = None if radius is not None else {**read_budget(budget).describe(), "picks": int(k)}
     extra = {"budget": given, "target_split": targets, "embedding": f"hop_{hop}", "metric": "L2",
              "threads": threads, "constraints": constraints,
              "targets_in_memory": chunk is None}
@@ -123,74 +129,72 @@ def _constrain(store, label, whole_pool, budget, radius, initial, include, exclu
     pool size in radius mode), the must-include nodes, ``{class: minimum}`` and the report's
     record of what was applied.
     """
+    known = store_ids(store)
+    checked = check_constraints(known, label, whole_pool, budget, radius, include, exclude,
+                                min_per_class)
+    pool, k, start, quota, constraints = checked
+    if include is None:
+        start = _initial_nodes(store, initial, pool, k)
+    return pool, k, start, quota, constraints
+
+
+def check_constraints(known, label, whole_pool, budget, radius, include, exclude, min_per_class,
+                      names=FLAGS):
+    """Every check of a selection's options that needs only ids, labels and the pool.
+
+    known : the graph's node ids (Arrow array), row ``i`` for dense index ``i``. label : int64
+    per row. whole_pool : sorted dense indices of the training pool. ``names`` words the errors
+    (command-line flags, or a job file's entry). Returns (pool, k, start, quota, constraints).
+    """
     constraints = {}
     pool = whole_pool
     if exclude is not None:
-        pool, constraints["exclude"] = _excluded(store, exclude, whole_pool)
+        pool, constraints["exclude"] = _excluded(known, exclude, whole_pool, names)
     budget_mode = radius is None
-    k = parse_budget(budget, len(whole_pool)) if budget_mode else len(pool)
+    k = parse_budget(budget, len(whole_pool), names) if budget_mode else len(pool)
     if k > len(pool):
-        raise InputError(f"--budget {budget}: {k} picks, but only {len(pool)} pool nodes remain "
-                         f"after --exclude {exclude}; use at most {len(pool)}")
+        raise InputError(f"{names.label('budget', budget)}: {k} picks, but only {len(pool)} pool "
+                         f"nodes remain after {names.label('exclude', exclude)}; use at most "
+                         f"{len(pool)}")
+    start = np.zeros(0, dtype=np.int64)
     if include is not None:
-        start = _included(store, include, whole_pool, pool, exclude, k if budget_mode else None)
+        start = _included(known, include, whole_pool, pool, exclude, k if budget_mode else None, names)
         constraints["include"] = {"file": str(include), "nodes": int(len(start))}
-    else:
-        start = _initial_nodes(store, initial, pool, k)
     quota = {}
     if min_per_class is not None:
-        quota = _quotas(min_per_class, k if budget_mode else None, label[pool], label[start])
-        constraints["min_per_class"] = {"given": min_per_class, "counts": {
+        quota, given = _quotas(min_per_class, k if budget_mode else None, label[pool], label[start], names)
+        constraints["min_per_class"] = {"given": given, "counts": {
             str(c): q for c, q in quota.items()}}
     if not budget_mode:
         constraints["radius"] = radius
     return pool, k, start, quota, constraints
 
 
-def parse_budget(budget, pool):
-    """The number of nodes to pick from a fraction (0 < B < 1) or a count (1 <= B <= pool)."""
-    value = fraction_or_count(budget)
-    if value is None:
-        raise InputError(f"--budget {budget}: use a fraction between 0 and 1 of the training pool "
-                         f"or a whole count from 1 to {pool} (the pool size)")
-    k = max(1, int(round(value * pool))) if value < 1 else int(value)
+def parse_budget(budget, pool, names=FLAGS):
+    """The number of nodes to pick out of ``pool`` by the budget rule (:mod:`..common.options`)."""
+    k = read_budget(budget, "budget", names).picks(pool)
     if k > pool:
-        raise InputError(f"--budget {budget}: larger than the training pool ({pool} nodes); "
-                         f"use at most {pool} or a fraction below 1")
+        raise InputError(f"{names.label('budget', budget)}: larger than the training pool ({pool} "
+                         f"nodes); use at most {pool} or a fraction such as 1.0")
     return k
 
 
-def fraction_or_count(value):
-    """``value`` as a float that is a fraction in (0, 1) or a whole number >= 1, else None."""
-    try:
-        number = float(value) if not isinstance(value, bool) else math.nan
-    except (TypeError, ValueError):
-        return None
-    if not math.isfinite(number) or number <= 0 or (number >= 1 and number != int(number)):
-        return None
-    return number
-
-
-def parse_quota(value, k):
-    """Per-class minimum from a count (>= 1) or a fraction of the budget ``k`` (rounded up).
-
-    ``k`` is None in radius mode, where only a count makes sense.
-    """
-    number = fraction_or_count(value)
-    if number is None:
-        raise InputError(f"--min-per-class {value}: use a whole count >= 1 or a fraction of the "
-                         f"budget between 0 and 1")
-    if number >= 1:
-        return int(number)
+def parse_quota(value, k, names=FLAGS):
+    """Per-class minimum from a count or a fraction of the budget ``k`` (rounded up), by the
+    budget rule; ``k`` is None in radius mode, where only a count makes sense."""
+    quota = read_budget(value, "min_per_class", names)
+    if quota.count is not None:
+        return quota.count, quota.describe()
     if k is None:
-        raise InputError(f"--min-per-class {value}: a fraction of the budget needs --budget; with "
-                         f"--radius give a whole count")
-    return max(1, math.ceil(number * k - 1e-9))
+        raise InputError(f"{names.label('min_per_class', value)}: a fraction of the budget needs "
+                         f"{names.hint('budget')}; with {names.hint('radius')} give a whole count")
+    return max(1, math.ceil(quota.fraction * k - 1e-9)), quota.describe()
 
 
-def _quotas(value, k, pool_labels, include_labels):
-    """``{class: minimum}`` for every class of the pool, checked against the budget ``k``."""
-    per_class = parse_quota(value, k)
+def _quotas(value, k, pool_labels, include_labels, names=FLAGS):
+    """``{class: minimum}`` for every class of the pool, checked against the budget ``k``, and
+    the quota as given (``Budget.describe``)."""
+    per_class, given = parse_quota(value, k, names)
     classes, sizes = np.unique(pool_labels, return_counts=True)
     included = dict(zip(*np.unique(include_labels, return_counts=True)))
 
@@ -201,32 +205,36 @@ def _quotas(value, k, pool_labels, include_labels):
         # quotas above the largest class all cost the same: no need to try them
         best = max((q for q in range(min(per_class, int(sizes.max()) + 1)) if picks(q) <= k),
                    default=0)
-        fix = f"use at most {best} or raise --budget" if best >= 1 else "raise --budget"
-        raise InputError(f"--min-per-class {value}: {len(classes)} classes need {picks(per_class)} "
-                         f"picks{' with the include list' if included else ''}, more than the "
-                         f"budget {k}; {fix}")
-    return {int(c): min(per_class, int(n)) for c, n in zip(classes, sizes)}
+        raise_it = f"raise {names.hint('budget')}"
+        fix = f"use at most {best} or {raise_it}" if best >= 1 else raise_it
+        raise InputError(f"{names.label('min_per_class', value)}: {len(classes)} classes need "
+                         f"{picks(per_class)} picks{' with the include list' if included else ''}, "
+                         f"more than the budget {k}; {fix}")
+    return {int(c): min(per_class, int(n)) for c, n in zip(classes, sizes)}, given
 
 
-def _check_radius(radius, strategy, budget):
+def check_radius(radius, strategy, budget, names=FLAGS):
+    """The radius as a float (None in budget mode), checked against the other options."""
     if radius is None:
         if budget is None:
-            raise InputError("--budget: required (a fraction of the training pool or a count) "
-                             "unless --radius is given with --strategy kcenter")
+            raise InputError(f"{names.hint('budget')}: required (a fraction of the training pool "
+                             f"or a count) unless {names.hint('radius')} is given with "
+                             f"{names.hint('strategy')} kcenter")
         return None
     try:
         value = float(radius) if not isinstance(radius, bool) else math.nan
     except (TypeError, ValueError):
         value = math.nan
+    label = names.label("radius", radius)
     if not math.isfinite(value) or value < 0:
-        raise InputError(f"--radius {radius}: use a distance >= 0 in the embedding's units "
+        raise InputError(f"{label}: use a distance >= 0 in the embedding's units "
                          f"(a report's coverage radius shows the scale)")
     if strategy != "kcenter":
-        raise InputError(f"--radius {radius}: only --strategy kcenter has a radius mode; use "
-                         f"kcenter or give --budget instead")
+        raise InputError(f"{label}: only {names.hint('strategy')} kcenter has a radius mode; use "
+                         f"kcenter or give {names.hint('budget')} instead")
     if budget is not None:
-        raise InputError(f"--radius {radius}: give --budget or --radius, not both; the radius "
-                         f"mode picks as many nodes as it needs")
+        raise InputError(f"{label}: give {names.hint('budget')} or {names.hint('radius')}, not "
+                         f"both; the radius mode picks as many nodes as it needs")
     return value
 
 
@@ -236,8 +244,11 @@ def _check_ensemble(ensemble, strategy):
     if strategy != "ddd":
         raise InputError(f"--ensemble {ensemble}: only --strategy ddd has an ensemble; drop the "
                          f"option or use ddd")
-    value = fraction_or_count(ensemble)
-    if value is None or value < 2 or value % 2:
+    try:
+        value = int(str(ensemble).strip()) if not isinstance(ensemble, (bool, float)) else 0
+    except ValueError:
+        value = 0
+    if value < 2 or value % 2:
         raise InputError(f"--ensemble {ensemble}: use an even count >= 2 (members come in pairs "
                          f"trained on complementary halves of the pool)")
     return int(value)
@@ -291,44 +302,47 @@ def _initial_nodes(store, initial, pool, k):
     return dense
 
 
-def _node_file(store, path, option):
-    """The ``node_id`` column of the Parquet file ``path`` as the store's id type, and the
-    dense index of each id (-1 where the graph has no such node)."""
-    return lookup(store, read_id_file(path, option).column("node_id"), option, path)
+def _node_file(known, path, key, names):
+    """The ``node_id`` column of the Parquet file ``path`` cast to the graph's id type, and the
+    dense index of each id in ``known`` (-1 where the graph has no such node)."""
+    option = names.hint(key) if names.where is None else f"{names.where} {key} ="
+    return lookup_in(known, read_id_file(path, option).column("node_id"), option, path)
 
 
-def _included(store, path, whole_pool, pool, exclude, k):
+def _included(known, path, whole_pool, pool, exclude, k, names):
     """Dense indices, in file order, of the must-include nodes (checked against ``k``)."""
-    wanted, dense = _node_file(store, path, "--include")
+    wanted, dense = _node_file(known, path, "include", names)
+    label = names.label("include", path)
     bad = (dense < 0) | ~np.isin(dense, whole_pool)
     if bad.any():
-        raise InputError(f"--include {path}: node {wanted[int(np.argmax(bad))].as_py()} is not in "
+        raise InputError(f"{label}: node {wanted[int(np.argmax(bad))].as_py()} is not in "
                          f"the training pool; give ids of nodes with split train and a label")
     banned = ~np.isin(dense, pool)
     if banned.any():
-        raise InputError(f"--include {path}: node {wanted[int(np.argmax(banned))].as_py()} is also "
-                         f"in --exclude {exclude}; a node cannot be both")
+        raise InputError(f"{label}: node {wanted[int(np.argmax(banned))].as_py()} is also "
+                         f"in {names.label('exclude', exclude)}; a node cannot be both")
     _, first = np.unique(dense, return_index=True)
     if len(first) != len(dense):
         twice = int(np.setdiff1d(np.arange(len(dense)), first)[0])
-        raise InputError(f"--include {path}: node {wanted[twice].as_py()} appears twice; list each "
+        raise InputError(f"{label}: node {wanted[twice].as_py()} appears twice; list each "
                          f"node once")
     if k is not None and len(dense) > k:
-        raise InputError(f"--include {path}: {len(dense)} nodes, more than the budget {k}; raise "
-                         f"--budget to at least {len(dense)} or shorten the file")
+        raise InputError(f"{label}: {len(dense)} nodes, more than the budget {k}; raise "
+                         f"{names.hint('budget')} to at least {len(dense)} or shorten the file")
     return dense
 
 
-def _excluded(store, path, whole_pool):
+def _excluded(known, path, whole_pool, names):
     """The pool left after removing the nodes of ``path``, and what the exclusion did."""
-    wanted, dense = _node_file(store, path, "--exclude")
+    wanted, dense = _node_file(known, path, "exclude", names)
+    label = names.label("exclude", path)
     if (dense < 0).any():
-        raise InputError(f"--exclude {path}: node {wanted[int(np.argmax(dense < 0))].as_py()} is "
+        raise InputError(f"{label}: node {wanted[int(np.argmax(dense < 0))].as_py()} is "
                          f"not in the graph; give ids from the node table")
     inside = np.isin(dense, whole_pool)
     pool = np.setdiff1d(whole_pool, dense[inside])
     if len(pool) == 0:
-        raise InputError(f"--exclude {path}: removes every training pool node; nothing is left "
+        raise InputError(f"{label}: removes every training pool node; nothing is left "
                          f"to choose")
     removed = len(whole_pool) - len(pool)
     return pool, {"file": str(path), "nodes": int(removed),
@@ -425,14 +439,18 @@ def _write(out, store, order, labels, report):
     table = pa.table({"node_id": ids, "rank": np.arange(len(order), dtype=np.int64),
                       "label": labels.astype(np.int64)})
     report_path = out.with_suffix(".json")
+    sweep_temps(out.parent)  # left by a select killed while writing
     temps = [p.with_name(f".{p.name}.{os.getpid()}.tmp") for p in (out, report_path)]
     placed = []
     try:
         pq.write_table(table, temps[0])
+        fault("select", "after-temp-write")
         with open(temps[1], "w") as fh:
-            json.dump(report, fh, indent=2)
+            fh.write(dumps(report, indent=2))
+        fault("select", "before-rename")
         os.replace(temps[1], report_path)
         placed.append(report_path)
+        fault("select", "after-rename")  # the report placed, its selection not yet
         os.replace(temps[0], out)
     except BaseException:
         for path in placed:  # a report without its selection would mislead

@@ -5,7 +5,8 @@ import pyarrow.parquet as pq
 import pytest
 
 from bigprune.cli import main
-from bigprune.scenario.demo import DEMO_STRATEGIES, DEMO_STUDY
+from bigprune.scenario.demo import DEMO_STRATEGIES, DEMO_STUDY, MARKER
+from conftest import tree_digest
 
 
 @pytest.fixture(scope="module")
@@ -50,3 +51,27 @@ def test_demo_runs_a_study(demo_run):
     assert summary["settings"]["evaluation"]["nodes"] == 300  # this week's answers
     assert (demo_run / "study" / "report.html").exists()
 
+
+
+def test_demo_refuses_a_folder_holding_the_users_own_files(tmp_path, capsys):
+    (tmp_path / "store").mkdir()
+    (tmp_path / "store" / "manifest.json").write_text('{"format_version": 1, "stages": {}}')
+    (tmp_path / "selections").mkdir()
+    (tmp_path / "selections" / "picks.parquet").write_bytes(b"the user's selection")
+    before = tree_digest(tmp_path)
+    capsys.readouterr()
+    assert main(["demo", "--workdir", str(tmp_path), "--nodes", "1000", "--quiet"]) == 2
+    out, err = capsys.readouterr()
+    assert err == (f"bigprune demo: error: --workdir {tmp_path}: folder is not empty and was not made "
+                   f"by bigprune demo (no {MARKER} file); the demo would overwrite what is there, so "
+                   "give a new or empty folder\n")
+    assert out == "" and tree_digest(tmp_path) == before  # nothing written, nothing replaced
+
+
+def test_demo_reruns_on_its_own_folder_and_skips_what_is_done(demo_run, capsys):
+    assert (demo_run / MARKER).is_file()  # the fixture's folder existed empty: the demo marked it
+    capsys.readouterr()
+    assert main(["demo", "--workdir", str(demo_run), "--nodes", "6000", "--quiet", "--threads", "1"]) == 0
+    out = capsys.readouterr().out
+    steps = 3 + len(DEMO_STRATEGIES)  # ingest, propagate, one select per rule, the study
+    assert "[data] reusing the generated marketplace" in out and f"(0 of {steps} steps ran)" in out

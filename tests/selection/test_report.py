@@ -11,7 +11,7 @@ from bigprune.common.runtime import set_threads
 from bigprune.common.schema import NO_LABEL
 from bigprune.selection.select import select
 from conftest import write_graph_store
-from test_select import add_propagate
+from conftest import add_propagate
 
 
 @pytest.fixture(autouse=True)

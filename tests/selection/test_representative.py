@@ -13,7 +13,6 @@ from sklearn.cluster import KMeans
 
 from bigprune.selection.kmeans import clusters, serve
 from bigprune.selection.select import select
-from test_select import add_propagate, skewed  # noqa: F401  (the fixture)
 
 kmedian_module = importlib.import_module("bigprune.selection.kmedian")
 
@@ -35,7 +34,7 @@ def _dense_greedy(dist, picks):
     return order
 
 
-def test_kmedian_is_the_dense_greedy_on_the_store(skewed):  # noqa: F811
+def test_kmedian_is_the_dense_greedy_on_the_store(skewed):
     hop, pool, targets = _space(skewed)
     result = select(skewed, "kmedian", 15, threads=1)
     dist = cdist(hop[targets], hop[pool])
@@ -46,14 +45,14 @@ def test_kmedian_is_the_dense_greedy_on_the_store(skewed):  # noqa: F811
         dist[:, np.searchsorted(pool, result["indices"])].min(axis=1).mean(), rel=1e-5)
 
 
-def test_kmedian_lowers_the_mean_distance_below_kcenter_and_random(skewed):  # noqa: F811
+def test_kmedian_lowers_the_mean_distance_below_kcenter_and_random(skewed):
     # The rule's objective is the mean target distance: it must beat rules that do not aim at it.
     mean = {rule: select(skewed, rule, 15, threads=1)["coverage"]["mean"]
             for rule in ("kmedian", "kcenter", "random")}
     assert mean["kmedian"] < mean["kcenter"] and mean["kmedian"] < mean["random"]
 
 
-def test_kmedian_short_lists_under_a_small_budget(skewed, monkeypatch):  # noqa: F811
+def test_kmedian_short_lists_under_a_small_budget(skewed, monkeypatch):
     # Lists shorter than the pool: the objective becomes the truncated one, still near the exact.
     exact = select(skewed, "kmedian", 15, threads=1)
     monkeypatch.setattr(kmedian_module, "DENSE_PAIRS", 0)
@@ -65,7 +64,7 @@ def test_kmedian_short_lists_under_a_small_budget(skewed, monkeypatch):  # noqa:
 
 
 @pytest.mark.parametrize("strategy", ["kmedian", "kmeans"])
-def test_quotas_bind_where_the_rule_alone_misses_a_class(skewed, strategy):  # noqa: F811
+def test_quotas_bind_where_the_rule_alone_misses_a_class(skewed, strategy):
     # reference: collections.Counter of the labels, with and without the quota
     label = skewed.load("graph", "label")
     free = Counter(label[select(skewed, strategy, 16, threads=1)["indices"]].tolist())
@@ -107,7 +106,7 @@ def test_kmeans_serves_larger_clusters_first_with_their_nearest_free_candidate()
     assert order.tolist() == expected
 
 
-def test_kmeans_is_seeded(skewed):  # noqa: F811
+def test_kmeans_is_seeded(skewed):
     a = select(skewed, "kmeans", 12, seed=1, threads=1)["indices"]
     b = select(skewed, "kmeans", 12, seed=1, threads=1)["indices"]
     np.testing.assert_array_equal(a, b)

@@ -5,7 +5,6 @@ import os
 from collections import Counter
 from fractions import Fraction
 
-import networkx as nx
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
@@ -24,7 +23,7 @@ from bigprune.common.runtime import set_threads
 from bigprune.common.schema import NO_LABEL
 from bigprune.selection.select import parse_budget, select
 from bigprune.selection.strategies import STRATEGIES, largest_remainder
-from conftest import random_symmetric, write_graph_store
+from conftest import add_propagate, write_graph_store
 
 select_module = importlib.import_module("bigprune.selection.select")  # the package's `select` is the function
 
@@ -33,21 +32,6 @@ select_module = importlib.import_module("bigprune.selection.select")  # the pack
 def restore_threads():
     yield
     set_threads(None)
-
-
-def add_propagate(store):
-    """Commit a propagate stage: hop_1 = D^-1/2 (A+I) D^-1/2 X, PageRank from networkx."""
-    indptr, indices = store.load("graph", "indptr"), store.load("graph", "indices")
-    n = len(indptr) - 1
-    adj = sp.csr_matrix((np.ones(len(indices)), indices, indptr), shape=(n, n))
-    a = adj + sp.identity(n)
-    scale = sp.diags(1.0 / np.sqrt(np.asarray(a.sum(1)).ravel()))
-    hop = (scale @ a @ scale @ store.load("graph", "features").astype(np.float64)).astype(np.float32)
-    rank = nx.pagerank(nx.from_scipy_sparse_array(adj), alpha=0.85, tol=1e-12)
-    with store.begin("propagate", params={"hops": 1, "norm": "sym"}) as w:
-        w.save("hop_1", hop)
-        w.save("pagerank", np.array([rank[i] for i in range(n)], dtype=np.float64))
-    return store
 
 
 @pytest.fixture
@@ -107,25 +91,29 @@ def test_unlabeled_targets_are_nodes_without_split(store):
     assert run(store, "random", 5, targets="valid")["targets"] == 30
 
 
+# The rule (bigprune.common.options): a decimal point or % makes a fraction of the pool, an
+# integer a count; Python floats are fractions and ints counts.
 @pytest.mark.parametrize("budget,k", [(0.1, 12), ("0.25", 30), (5, 5), ("7", 7), (120, 120),
-                                      (1, 1), (0.001, 1)])
+                                      (1, 1), ("1", 1), (1.0, 120), ("1.0", 120), ("5%", 6),
+                                      (".5", 60), (0.001, 1), (np.int64(3), 3)])
 def test_budget_parsing(budget, k):
     assert parse_budget(budget, 120) == k
 
 
-@pytest.mark.parametrize("budget", [0, -3, float("nan"), "nan", 2.5, "abc", None, True])
+@pytest.mark.parametrize("budget", [0, -3, float("nan"), "nan", 2.5, "2.5", "1e3", "0.0", "150%",
+                                    "abc", None, True])
 def test_budget_errors(budget):
     with pytest.raises(InputError) as err:
         parse_budget(budget, 120)
-    assert str(err.value) == (f"--budget {budget}: use a fraction between 0 and 1 of the training "
-                              f"pool or a whole count from 1 to 120 (the pool size)")
+    assert str(err.value) == (f"--budget {budget}: use a fraction in (0, 1] written with a decimal "
+                              f"point or % (0.05, 1.0, 5%) or a count written as an integer (1, 5000)")
 
 
 def test_budget_larger_than_pool(store):
     with pytest.raises(InputError) as err:
         run(store, "random", 121)
     assert str(err.value) == ("--budget 121: larger than the training pool (120 nodes); "
-                              "use at most 120 or a fraction below 1")
+                              "use at most 120 or a fraction such as 1.0")
 
 
 def test_option_errors(store, tmp_path):
@@ -208,25 +196,6 @@ def test_no_files_left_when_a_strategy_fails(store, tmp_path, monkeypatch):
 
 
 # ---- constraints: quotas, include and exclude lists, radius mode ----------------------------
-@pytest.fixture
-def skewed(tmp_path):
-    """260 nodes, classes in proportions ~ 60/25/10/5 %: 140 train, 20 valid, 100 test.
-
-    Train class 3 has 5 nodes, so a quota of 4 binds for every rule at budget 16.
-    """
-    rng = np.random.default_rng(11)
-    n = 260
-    label = rng.choice(4, size=n, p=[0.6, 0.25, 0.1, 0.05])
-    label[:5] = 3
-    label[5:140][label[5:140] == 3] = 0
-    features = rng.normal(size=(n, 6)) + 1.5 * label[:, None]
-    split = np.zeros(n, dtype=np.int8)
-    split[:140], split[140:160], split[160:] = 1, 2, 3
-    label = np.where(split == 3, NO_LABEL, label)
-    adj = random_symmetric(n, 0.04, rng)
-    return add_propagate(write_graph_store(tmp_path / "skewed", adj, features, split, label))
-
-
 def id_file(path, dense):
     """A Parquet file with the user's ids (dense * 7 + 100, as the fixtures write them)."""
     pq.write_table(pa.table({"node_id": np.asarray(dense, dtype=np.int64) * 7 + 100}), path)
@@ -514,10 +483,13 @@ def test_constraint_errors(skewed, tmp_path):
         (dict(min_per_class=3, include=inc), None),
         (dict(min_per_class="0.4"), "--min-per-class 0.4: 4 classes need 20 picks, more than the "
                                     "budget 12; use at most 3 or raise --budget"),
-        (dict(min_per_class="2.5"), "--min-per-class 2.5: use a whole count >= 1 or a fraction of "
-                                    "the budget between 0 and 1"),
-        (dict(min_per_class=0), "--min-per-class 0: use a whole count >= 1 or a fraction of the "
-                                "budget between 0 and 1"),
+        # the budget's rule, for a quota too (bigprune.common.options)
+        (dict(min_per_class="2.5"), "--min-per-class 2.5: use a fraction in (0, 1] written with a "
+                                    "decimal point or % (0.05, 1.0, 5%) or a count written as an "
+                                    "integer (1, 5000)"),
+        (dict(min_per_class=0), "--min-per-class 0: use a fraction in (0, 1] written with a "
+                                "decimal point or % (0.05, 1.0, 5%) or a count written as an "
+                                "integer (1, 5000)"),
         (dict(budget=None), "--budget: required (a fraction of the training pool or a count) "
                             "unless --radius is given with --strategy kcenter"),
         (dict(radius=1.0), "--radius 1.0: give --budget or --radius, not both; the radius mode "
