@@ -292,7 +292,8 @@ def _preference_blocks(preferences, images):
         for name, title in MEASURES.items():
             body.append([rule, title] + [_num(p[name]) for p in parts] + [_num(pool.get(name))])
     blocks.append(("table", header, body))
-    return blocks + _image(images, PREFERENCE, "What each rule prefers, by fifths of its ranking")
+    return blocks + [("img", PREFERENCE, images[PREFERENCE],
+                      "What each rule prefers, by fifths of its ranking")]
 
 
 def _num(value):
