@@ -130,7 +130,7 @@ def _parser():
     p.add_argument("--strategy", required=True, metavar="NAME",
                    help="kmedian (the default to start with: the mean target distance), kmeans, "
                         "kcenter (the largest target distance), kcenter-pool, random, stratified, "
-                        "degree, pagerank, entropy, el2n or age")
+                        "degree, pagerank, entropy, el2n, age, ddd or influence")
     p.add_argument("--budget", default=None, metavar="B",
                    help=f"how many training-pool nodes to pick: {BUDGET_HELP}; required unless "
                         f"--radius")
@@ -151,6 +151,8 @@ def _parser():
     p.add_argument("--targets", default="test", metavar="SPLIT",
                    help="nodes to cover: test (default), valid or unlabeled")
     p.add_argument("--seed", type=int, default=0, metavar="S")
+    p.add_argument("--ensemble", default=None, metavar="N",
+                   help="ddd only: proxies in the ensemble, an even count (default 8)")
     p.add_argument("--out", required=True, metavar="FILE.parquet",
                    help="selection table; the report goes beside it as FILE.json")
     p = sub.add_parser("train", parents=[common], formatter_class=fmt, epilog=EXAMPLES["train"],
@@ -284,7 +286,7 @@ def _run(args, emit):
     report = select(args.store, args.strategy, args.budget, targets=args.targets, seed=args.seed,
                     out=args.out, include=args.include, exclude=args.exclude,
                     min_per_class=args.min_per_class, radius=args.radius,
-                    cover=args.cover, **opts)
+                    cover=args.cover, ensemble=args.ensemble, **opts)
     return _printable(report)
 
 

@@ -23,7 +23,7 @@ sys.path[:0] = [str(ROOT), str(ROOT / "tests")]
 import bigprune  # noqa: E402
 from conftest import build_citeseer  # noqa: E402
 
-SEEDED = {"random", "stratified", "kmeans", "kcenter-pool", "el2n", "age"}
+SEEDED = {"random", "stratified", "kmeans", "kcenter-pool", "el2n", "age", "ddd"}
 
 
 def main():

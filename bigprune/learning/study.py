@@ -45,8 +45,8 @@ DEFAULT_TOLERANCE = 0.01
 FULL = "full-pool"  # the reference cell: every rule's subset at budget 1
 # Rules whose picks do not depend on the seed (the k-supplier greedy breaks ties by index and its
 # searches are exact; kmedian's index trains with a fixed seed and its greedy breaks ties by
-# index; entropy's proxy starts from zero): their first repeat stands for all.
-SEED_FREE = frozenset({"kmedian", "kcenter", "degree", "pagerank", "entropy"})
+# index; entropy's and influence's proxies start from zero): their first repeat stands for all.
+SEED_FREE = frozenset({"kmedian", "kcenter", "degree", "pagerank", "entropy", "influence"})
 # The rules a study compares unless told: the representative rules, the k-supplier greedy and
 # random, the baseline every rule must beat.
 DEFAULT_RULES = ("kmedian", "kmeans", "kcenter", "random")
@@ -302,7 +302,7 @@ def _study(setup, out, tolerance, memory, threads):
                             "l2_grid": None if setup["l2"] is not None else list(L2_GRID),
                             "standardize": setup["standardize"], "embedding": f"hop_{setup['hop']}",
                             "evaluation": setup["evaluation"], "pool": int(len(setup["pool"]))},
-               "diagnostics": _diagnostics(setup, done)}
+               "diagnostics": _diagnostics(setup, done), "preferences": _preferences(setup, done)}
     summary["outputs"] = write_outputs(out, rows, summary)
     return summary
 
@@ -410,6 +410,8 @@ def _run_cell(cell):
         result["diagnostics"] = report["diagnostics"]
         result["classes"] = report["classes"]
         result["fill_picks"] = report.get("greedy", {}).get("filled", 0)
+        if "preference" in report:
+            result["preference"] = report["preference"]
     label = store.load("graph", "label", mmap=False)[rows]
     x = _gather(ctx["embedding"], rows, ctx["window"])
     # the proxy holds a float64 copy of each chunk and three (chunk, classes) temporaries
@@ -516,3 +518,24 @@ def _diagnostics(setup, done):
                 seen = [r[name] for r in runs if r[name] is not None]
                 slot[name] = float(np.mean(seen)) if seen else None
     return {"rules": out, "pool": pool}
+
+
+def _preferences(setup, done):
+    """What each ranking rule prefers: per fifth of its ranking, the mean over the rule's cells
+    (budgets and repeats) of the select reports' degree, PageRank and homophily; the pool's."""
+    runs, pool = {}, None
+    for cell in setup["cells"]:
+        profile = done[cell["name"]]["result"].get("preference")
+        if profile is not None:
+            pool = profile["pool"]
+            runs.setdefault(cell["rule"], []).append(profile["parts"])
+    rules = {}
+    for rule, profiles in runs.items():
+        rules[rule] = []
+        for i, part in enumerate(profiles[0]):
+            means = {}
+            for name in ("degree", "pagerank", "homophily"):
+                seen = [p[i][name] for p in profiles if p[i][name] is not None]
+                means[name] = float(np.mean(seen)) if seen else None
+            rules[rule].append({"from": part["from"], "to": part["to"], **means})
+    return {"rules": rules, "pool": pool}

@@ -21,9 +21,11 @@ CAUTION = ("A subset that matches the full pool's overall accuracy can still do 
            "of the graph may lose many points while the average moves by less than the "
            "tolerance. Read the per-class table below, and check the groups that matter to you, "
            "before training the production model on a pruned set.")
-CURVES, PER_CLASS = "error_curves.png", "per_class.png"
+CURVES, PER_CLASS, PREFERENCE = "error_curves.png", "per_class.png", "preference.png"
 # What the recommendation says of a rule that is within the tolerance only with the full pool.
 NOT_REACHED = "not reached"
+# The measures of a ranking's profile (bigprune.selection.report.ranking_profile), as shown.
+MEASURES = {"degree": "degree", "pagerank": "PageRank", "homophily": "homophily"}
 
 
 def write_outputs(out, rows, summary):
@@ -145,7 +147,30 @@ def _plots(rows, summary, classes):
     ax.set_title("Per-class accuracy at each rule's recommended budget")
     ax.legend(fontsize=8, loc="lower right")
     images[PER_CLASS] = _png(fig)
+    preferences = summary.get("preferences", {}).get("rules")
+    if preferences:
+        images[PREFERENCE] = _preference_plot(summary["preferences"], Figure, FigureCanvasAgg)
     return images
+
+
+def _preference_plot(preferences, Figure, FigureCanvasAgg):
+    """One panel per measure: each ranking rule's fifths (x) beside the pool (dotted line)."""
+    fig = Figure(figsize=(10, 3.4))
+    FigureCanvasAgg(fig)
+    pool = preferences["pool"] or {}
+    for at, (name, title) in enumerate(MEASURES.items()):
+        ax = fig.add_subplot(1, len(MEASURES), at + 1)
+        for i, (rule, parts) in enumerate(preferences["rules"].items()):
+            values = [math.nan if p[name] is None else p[name] for p in parts]
+            ax.plot(np.arange(1, len(parts) + 1), values, "o-", color=f"C{i % 10}", lw=1.2, ms=4,
+                    label=rule)
+        if pool.get(name) is not None:
+            ax.axhline(pool[name], color="grey", ls=":", lw=1, label="pool")
+        ax.set_xticks(np.arange(1, 6), ["top", "2", "3", "4", "last"])
+        ax.set_xlabel("fifth of the ranking")
+        ax.set_title(title, fontsize=10)
+    ax.legend(fontsize=7)
+    return _png(fig)
 
 
 def _png(fig):
@@ -257,7 +282,28 @@ def report_blocks(rows, summary, classes, images):
                          _num(d["homophily"]), _num(d["radius"]), _num(d["mean_distance"])])
     blocks.append(("table", ["rule", "budget", "nodes", "degree", "PageRank", "homophily",
                              "radius", "mean distance"], body))
-    return blocks
+    return blocks + _preference_blocks(summary.get("preferences"), images)
+
+
+def _preference_blocks(preferences, images):
+    """What each ranking rule prefers, by fifths of its ranking, beside the pool."""
+    if not preferences or not preferences["rules"]:
+        return []
+    pool = preferences["pool"] or {}
+    blocks = [("h2", "What each rule prefers"),
+              ("p", "Each ranking rule orders the whole pool; the table splits that order into "
+                    "fifths (top 20 % first) and gives each fifth's mean degree, PageRank and "
+                    "label homophily beside the whole pool's, averaged over the rule's cells. A "
+                    "top fifth far below the pool's degree or homophily means the rule reaches "
+                    "first for sparse or heterophilous nodes, which small budgets pay for.")]
+    header = ["rule", "measure", "top 20 %", "20-40 %", "40-60 %", "60-80 %", "80-100 %", "pool"]
+    body = []
+    for rule, parts in preferences["rules"].items():
+        for name, title in MEASURES.items():
+            body.append([rule, title] + [_num(p[name]) for p in parts] + [_num(pool.get(name))])
+    blocks.append(("table", header, body))
+    return blocks + [("img", PREFERENCE, images[PREFERENCE],
+                      "What each rule prefers, by fifths of its ranking")]
 
 
 def recommendation_notes(rec):

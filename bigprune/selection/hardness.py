@@ -1,4 +1,5 @@
-"""Per-node hardness scores from the proxy model, for the ``entropy``, ``el2n`` and ``age`` rules.
+"""Per-node hardness scores from the proxy model, for the ``entropy``, ``el2n``, ``age`` and
+``ddd`` rules (``influence`` has its own module).
 
 Every function takes the pool's rows of the selection embedding (float32 (n, d), in memory) and
 the pool's labels (int (n,)), and returns float64 scores (n,) where higher means "pick first",
@@ -8,7 +9,8 @@ import math
 
 import numpy as np
 
-from ..learning.proxy import fit_proxy
+from ..common.errors import InputError
+from ..learning.proxy import L2_GRID, fit_proxy
 from ..common.runtime import progress
 
 # EL2N (Paul et al., 2021) scores a node early in training, averaged over random starts. The
@@ -20,6 +22,9 @@ EL2N_ITERATIONS = 10
 # Beta(1, 1.005 - base**t) and the entropy and density weights split the rest equally; base
 # was 0.9 on some of the paper's data sets and 0.995 on others (not verified).
 AGE_BASE = 0.9
+# DDD's ensemble size (``ddd_scores(members=...)``, ``select(ensemble=...)``, ``--ensemble``):
+# four pairs of proxies on complementary halves, so every node gets four held-out votes.
+DDD_MEMBERS = 8
 
 
 def predictive_entropy(probabilities):
@@ -118,3 +123,58 @@ def age_scores(rows, labels, centrality, steps, seed=0, l2=1.0, chunk_rows=65536
              + gamma * percentiles(centrality))
     return score, {**info, "weights": {"entropy": alpha, "density": beta, "pagerank": gamma},
                    "schedule_base": AGE_BASE, "steps": int(steps)}
+
+
+def ddd_penalties(chosen, grid=L2_GRID):
+    """The ensemble's penalties: ``chosen``, then its stronger and its weaker neighbour on
+    ``grid`` (those that exist); member pairs take them in turn."""
+    ordered = sorted({float(g) for g in grid} | {float(chosen)}, reverse=True)
+    at = ordered.index(float(chosen))
+    return [ordered[i] for i in (at, at - 1, at + 1) if 0 <= i < len(ordered)]
+
+
+def ddd_scores(rows, labels, members=DDD_MEMBERS, seed=0, l2=1.0, chunk_rows=65536):
+    """Ensemble disagreement (Meding, Buschoff, Geirhos & Wichmann, 2022): the share of held-out
+    proxies that misclassify each node, higher first.
+
+    The ``members`` proxies (an even count) come in pairs: pair ``j`` draws the permutation
+    ``numpy.random.default_rng([seed, j]).permutation(n)``, its first member trains on the first
+    ``n // 2`` nodes and its second on the rest, so every node is held out of exactly one member
+    per pair and is scored only by those ``members / 2`` proxies (a node a proxy trained on is
+    nearly always right). Diversity comes from the halves and from the penalty: pair ``j`` uses
+    ``ddd_penalties(l2)[j % 3]`` (the chosen l2, one grid step stronger, one weaker); the hops
+    are not varied (one embedding is held). Members train one after another, each with the
+    proxy's chunked buffers, so memory does not grow with the ensemble.
+
+    The score is ``share + (1 - mean held-out probability of the true label) / (pairs + 1)``:
+    the share ranks first (its steps are ``1 / pairs``), the margin only breaks its ties.
+    """
+    if isinstance(members, bool) or not isinstance(members, (int, np.integer)) or members < 2 \
+            or members % 2:
+        raise InputError(f"--ensemble {members}: use an even count >= 2 (members come in pairs "
+                         f"trained on complementary halves of the pool)")
+    n, pairs = len(rows), members // 2
+    labels = np.asarray(labels)
+    wrong, truth_probability = np.zeros(n), np.zeros(n)
+    penalties = ddd_penalties(l2)
+    steps = []
+    with progress(total=members, desc="ddd", unit="proxy") as bar:
+        for pair in range(pairs):
+            order = np.random.default_rng([seed, pair]).permutation(n)
+            for train, held in ((order[:n // 2], order[n // 2:]), (order[n // 2:], order[:n // 2])):
+                held = np.sort(held)
+                model = fit_proxy(rows, labels, train, l2=penalties[pair % len(penalties)],
+                                  chunk_rows=chunk_rows)
+                p = model.predict_proba(rows, held, chunk_rows)
+                known = np.isin(labels[held], model.classes)
+                column = np.searchsorted(model.classes, labels[held]).clip(max=len(model.classes) - 1)
+                right = np.where(known, p[np.arange(len(held)), column], 0.0)
+                wrong[held] += model.classes[np.argmax(p, axis=1)] != labels[held]
+                truth_probability[held] += right
+                steps.append(model.iterations)
+                bar.update(1)
+    share = wrong / pairs
+    score = share + (1.0 - truth_probability / pairs) / (pairs + 1)
+    return score, {"members": int(members), "halves": "complementary, seeded per pair",
+                   "penalties": penalties, "proxy_iterations": steps, "l2": l2,
+                   "misclassified_share_mean": float(share.mean())}

@@ -76,6 +76,26 @@ def homophily(store, nodes, window_rows):
 
 def diagnostics(store, selected, pool, window_rows):
     """Mean degree, PageRank and homophily of the selection beside the whole pool."""
+    describe = _describer(store, window_rows)
+    return {"selected": describe(selected), "pool": describe(pool)}
+
+
+def ranking_profile(store, ranking, pool, window_rows, parts=5):
+    """What a ranking rule prefers: mean degree, PageRank and homophily of each of ``parts``
+    consecutive slices of ``ranking`` (the whole pool, best first; slices differ in size by at
+    most one node, as ``numpy.array_split``), beside the whole pool."""
+    describe = _describer(store, window_rows)
+    slices = np.array_split(np.asarray(ranking, dtype=np.int64), parts)
+    shares, at = [], 0
+    for part in slices:
+        shares.append({"from": at / len(ranking), "to": (at + len(part)) / len(ranking),
+                       "nodes": int(len(part)), **describe(part)})
+        at += len(part)
+    return {"parts": shares, "pool": describe(pool)}
+
+
+def _describer(store, window_rows):
+    """A function: nodes -> their mean degree, PageRank and homophily."""
     degree = np.diff(store.load("graph", "indptr", mmap=False))
     rank = store.load("propagate", "pagerank", mmap=False)
 
@@ -84,4 +104,4 @@ def diagnostics(store, selected, pool, window_rows):
         return {"degree": float(degree[nodes].mean()), "pagerank": float(rank[nodes].mean()),
                 "homophily": homophily(store, nodes, window_rows)}
 
-    return {"selected": describe(selected), "pool": describe(pool)}
+    return describe

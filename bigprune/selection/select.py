@@ -17,11 +17,12 @@ from ..common.jsonout import dumps
 from ..common.options import FLAGS, read_budget
 from ..common.memory import FIXED_OVERHEAD, format_size, parse_size, peak_rss, rows_per_chunk, working_memory
 from ..common.classes import class_names
-from .report import CAUTION, changes, class_counts, coverage, diagnostics
+from .report import CAUTION, changes, class_counts, coverage, diagnostics, ranking_profile
 from ..common.runtime import set_threads
 from .kcenter import GROUP_ROWS, PRODUCT_ITEMS, cover
 from ..common.schema import NO_LABEL, NO_SPLIT, SPLIT_CODES
 from ..common.store import STAGING, Store
+from .hardness import DDD_MEMBERS
 from ..common.store import reads_store
 from ..common.faults import fault
 from ..common.tempfiles import sweep_temps
@@ -36,7 +37,7 @@ PROXY_ROW_COPIES = 4
 @reads_store
 def select(store, strategy, budget=None, targets="test", seed=0, out=None, memory_budget="4GiB",
            threads=None, embedding_hop=None, initial=None, include=None, exclude=None,
-           min_per_class=None, radius=None, cover=None):
+           min_per_class=None, radius=None, cover=None, ensemble=None):
     """Choose ``budget`` training-pool nodes with ``strategy`` and report what they cover.
 
     Parameters
@@ -61,6 +62,8 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
         that bring every target within ``radius`` (plus any quota picks).
     cover : share of the targets in (0, 1] (a float, or text such as ``"0.95"`` or ``"95%"``),
         with ``radius`` only: the fewest greedy picks that bring that share within ``radius``.
+    ensemble : even int >= 2 or None; ``ddd`` only: the proxies in its ensemble (default
+        :data:`bigprune.selection.hardness.DDD_MEMBERS`).
 
     Returns
     -------
@@ -75,6 +78,7 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
         raise InputError(f"--targets {targets}: unknown; use one of {', '.join(TARGETS)}")
     radius = check_radius(radius, strategy, budget)
     cover = _check_cover(cover, radius)
+    ensemble = _check_ensemble(ensemble, strategy)
     if include is not None and initial is not None:
         raise InputError(f"--include {include}: give either an include file or initial ids, not both")
     out = _check_out(out, store)
@@ -117,7 +121,8 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
     try:
         rule_bytes = memory - FIXED_OVERHEAD - _common_bytes(strategy, len(pool), k, width, classes)
         problem = Problem(store, pool, chosen_targets, k, start, int(seed), embedding, window_rows,
-                          label, quota, radius, proxy_rows, chunk, rule_bytes, cover=cover)
+                          label, quota, radius, proxy_rows, chunk, rule_bytes, cover=cover,
+                          ensemble=ensemble)
         return _select(problem, strategy, label, out, started, extra)
     finally:
         if scratch is not None:
@@ -255,6 +260,22 @@ def _check_cover(cover, radius):
         raise InputError(f"--cover {cover}: goes with --radius (the share of targets to bring "
                          f"within it); give --radius R too")
     return value
+
+
+def _check_ensemble(ensemble, strategy):
+    if ensemble is None:
+        return DDD_MEMBERS
+    if strategy != "ddd":
+        raise InputError(f"--ensemble {ensemble}: only --strategy ddd has an ensemble; drop the "
+                         f"option or use ddd")
+    try:
+        value = int(str(ensemble).strip()) if not isinstance(ensemble, (bool, float)) else 0
+    except ValueError:
+        value = 0
+    if value < 2 or value % 2:
+        raise InputError(f"--ensemble {ensemble}: use an even count >= 2 (members come in pairs "
+                         f"trained on complementary halves of the pool)")
+    return int(value)
 
 
 def _check_out(out, store):
@@ -404,6 +425,8 @@ def _select(problem, strategy, label, out, started, extra):
     """Run ``strategy``, build the report, write the outputs; returns the report."""
     choice = STRATEGIES[strategy](problem)
     order = choice.order
+    info = dict(choice.info or {})
+    ranking = info.pop("ranking", None)
     if choice.outcome is not None:
         dist, assign = choice.outcome.dist, choice.outcome.assign
     else:
@@ -422,7 +445,10 @@ def _select(problem, strategy, label, out, started, extra):
     if "include" in extra["constraints"]:
         report["changed"] = changes(order, problem.initial)
     report["diagnostics"] = diagnostics(problem.store, order, problem.pool, problem.window_rows)
-    report.update(choice.info or {})
+    if ranking is not None:
+        report["preference"] = ranking_profile(problem.store, ranking, problem.pool,
+                                               problem.window_rows)
+    report.update(info)
     report["caution"] = CAUTION
     report["seconds"] = round(time.perf_counter() - started, 3)
     report["peak_rss"] = peak_rss()

@@ -5,7 +5,8 @@ the pool left after any exclusion), in the order they were chosen; ``problem.ini
 must-include list, possibly empty) always comes first. In radius mode (``kcenter`` only) the
 count is whatever the radius needs. Per-class quotas hold for every rule:
 
-- ranking rules (``random``, ``degree``, ``pagerank``, ``entropy``, ``el2n``, ``age``): the
+- ranking rules (``random``, ``degree``, ``pagerank``, ``entropy``, ``el2n``, ``age``, ``ddd``,
+  ``influence``): the
   best-ranked nodes of each under-served class are reserved first, the remaining slots go to
   the best-ranked of the rest (the top-k with the fewest swaps);
 - ``stratified``: the class counts are the largest-remainder rounding of the pool's
@@ -27,7 +28,8 @@ import numpy as np
 from ..common.errors import InputError
 from ..common.schema import NO_LABEL, SPLIT_CODES
 from ..learning.proxy import fit_tuned
-from .hardness import age_scores, el2n_scores, entropy_scores
+from .hardness import DDD_MEMBERS, age_scores, ddd_scores, el2n_scores, entropy_scores
+from .influence import influence_scores
 from .kcenter import RowChunks, cover, greedy
 from .kmeans import clusters, serve
 from .kmedian import PAIR_BYTES, neighbour_lists, plan_neighbours
@@ -42,7 +44,9 @@ Choice = namedtuple("Choice", "order reason outcome info", defaults=(None, None)
 Choice.__doc__ = """order : int64 (k,), dense indices. reason : object (k,), why each pick is
 there (:mod:`bigprune.selection.reasons`). outcome : the kcenter ``Outcome`` whose
 ``dist``/``assign`` are the report's targets' coverage, or None (the report computes it).
-info : dict or None, JSON-ready facts for the report (greedy counters, how scores were made)."""
+info : dict or None, JSON-ready facts for the report (greedy counters, how scores were made);
+a ranking rule adds ``"ranking"``, the whole pool best first (int64), which the select stage
+takes out and profiles by fifths (:func:`bigprune.selection.report.ranking_profile`)."""
 
 
 @dataclass
@@ -61,6 +65,7 @@ class Problem:
     proxy_rows : int, rows per chunk when the proxy model trains (planned from the budget).
     target_chunk : None (target rows are held in memory) or (chunk rows, group rows, scratch
     directory): the greedy keeps them on disk (see :class:`bigprune.selection.kcenter.RowChunks`).
+    rule_bytes : int, memory the rule may hold. ensemble : int, ``ddd``'s proxies.
     """
 
     store: object
@@ -78,6 +83,7 @@ class Problem:
     target_chunk: tuple = None
     rule_bytes: int = 1 << 30
     cover: float = None
+    ensemble: int = DDD_MEMBERS
 
     def rows(self, index):
         """Rows ``index`` (sorted int64) of the embedding as float32 (len, d).
@@ -206,9 +212,11 @@ def _pick(problem, ranking, info=None):
     return Choice(order, reasons(len(order), len(problem.initial), quota=quota), None, info)
 
 
-def _by_score(problem, score, info=None):
-    """Pool nodes by decreasing ``score`` (aligned with ``pool``), ties to the lower index."""
-    return _pick(problem, problem.pool[np.argsort(-score, kind="stable")], info)
+def _ranked(problem, score, info=None):
+    """The Choice of a ranking rule: pool nodes by decreasing ``score`` (aligned with ``pool``,
+    ties to the lower index) through :func:`_pick`, with the whole ranking in ``info``."""
+    ranking = problem.pool[np.argsort(-score, kind="stable")]
+    return _pick(problem, ranking, {**(info or {}), "ranking": ranking})
 
 
 def _with_quotas(problem, outcome, pool_targets):
@@ -351,7 +359,8 @@ def kcenter_pool(problem):
 def random(problem):
     """A uniform random sample of the pool (seeded)."""
     rest = np.setdiff1d(problem.pool, problem.initial, assume_unique=True)
-    return _pick(problem, np.random.default_rng(problem.seed).permutation(rest))
+    ranking = np.concatenate([problem.initial, np.random.default_rng(problem.seed).permutation(rest)])
+    return _pick(problem, ranking, {"ranking": ranking.astype(np.int64)})
 
 
 def stratified(problem):
@@ -380,27 +389,27 @@ def stratified(problem):
 def degree(problem):
     """Highest degree (number of neighbours) first."""
     indptr = problem.store.load("graph", "indptr", mmap=False)
-    return _by_score(problem, np.diff(indptr)[problem.pool])
+    return _ranked(problem, np.diff(indptr)[problem.pool])
 
 
 def pagerank(problem):
     """Highest PageRank first."""
     rank = problem.store.load("propagate", "pagerank", mmap=False)
-    return _by_score(problem, rank[problem.pool])
+    return _ranked(problem, rank[problem.pool])
 
 
 def entropy(problem):
     """Highest predictive entropy of the proxy model trained on the pool first."""
     score, info = entropy_scores(problem.pool_rows, problem.pool_label, l2=problem.proxy_l2["l2"],
                                  chunk_rows=problem.proxy_rows)
-    return _by_score(problem, score, {"hardness": {**info, "l2": problem.proxy_l2}})
+    return _ranked(problem, score, {"hardness": {**info, "l2": problem.proxy_l2}})
 
 
 def el2n(problem):
     """Highest EL2N score (Paul et al., 2021) first: mean early error norm over random starts."""
     score, info = el2n_scores(problem.pool_rows, problem.pool_label, seed=problem.seed,
                               l2=problem.proxy_l2["l2"], chunk_rows=problem.proxy_rows)
-    return _by_score(problem, score, {"hardness": {**info, "l2": problem.proxy_l2}})
+    return _ranked(problem, score, {"hardness": {**info, "l2": problem.proxy_l2}})
 
 
 def age(problem):
@@ -408,7 +417,23 @@ def age(problem):
     rank = problem.store.load("propagate", "pagerank", mmap=False)
     score, info = age_scores(problem.pool_rows, problem.pool_label, rank[problem.pool], problem.k,
                              seed=problem.seed, l2=problem.proxy_l2["l2"], chunk_rows=problem.proxy_rows)
-    return _by_score(problem, score, {"hardness": {**info, "l2": problem.proxy_l2}})
+    return _ranked(problem, score, {"hardness": {**info, "l2": problem.proxy_l2}})
+
+
+def ddd(problem):
+    """Highest ensemble disagreement (Meding et al., 2022) first: the share of held-out proxies
+    (pairs trained on complementary seeded halves of the pool) that misclassify the node."""
+    score, info = ddd_scores(problem.pool_rows, problem.pool_label, members=problem.ensemble,
+                             seed=problem.seed, l2=problem.proxy_l2["l2"], chunk_rows=problem.proxy_rows)
+    return _ranked(problem, score, {"hardness": {**info, "l2": problem.proxy_l2}})
+
+
+def influence(problem):
+    """Highest self-influence under the proxy (Koh & Liang, 2017) first: ``g^T H^-1 g``, the
+    rise of the node's own loss if it were left out (see :mod:`bigprune.selection.influence`)."""
+    score, info = influence_scores(problem.pool_rows, problem.pool_label, l2=problem.proxy_l2["l2"],
+                                   chunk_rows=problem.proxy_rows, memory_bytes=problem.rule_bytes)
+    return _ranked(problem, score, {"hardness": {**info, "l2": problem.proxy_l2}})
 
 
 STRATEGIES = {
@@ -423,8 +448,11 @@ STRATEGIES = {
     "entropy": entropy,
     "el2n": el2n,
     "age": age,
+    "ddd": ddd,
+    "influence": influence,
 }
 # Rules that hold the pool's feature rows (with an index, a sorted copy or the proxy's buffers).
-NEEDS_POOL_ROWS = {"kmedian", "kmeans", "kcenter", "kcenter-pool", "entropy", "el2n", "age"}
+NEEDS_POOL_ROWS = {"kmedian", "kmeans", "kcenter", "kcenter-pool", "entropy", "el2n", "age", "ddd",
+                   "influence"}
 # Rules that train the proxy model on the pool.
-NEEDS_PROXY = {"entropy", "el2n", "age"}
+NEEDS_PROXY = {"entropy", "el2n", "age", "ddd", "influence"}

@@ -236,7 +236,8 @@ def test_answers_are_the_evaluation_set(store, tmp_path):
 def test_report_is_self_contained_with_plots(done):
     out = done[0]
     page = (out / "report.html").read_text()
-    assert page.count("data:image/png;base64,") == 2 and 'src="http' not in page
+    # error curves, per-class accuracy and what random (the one ranking rule here) prefers
+    assert page.count("data:image/png;base64,") == 3 and 'src="http' not in page
     assert (out / "error_curves.png").read_bytes()[:4] == b"\x89PNG"
     text = (out / "report.md").read_text()
     assert "![" in text and "per-class" in text and "Recommendation" in text
@@ -359,3 +360,29 @@ def test_report_says_not_reached_names_weak_classes_and_the_tie():
     # three budgets per rule: every fit is unreliable, and the report says so
     assert all(not f["reliable"] for f in fits.values())
     assert "no: 3 budgets, fewer than 5" in text
+
+
+def test_preferences_are_the_mean_of_the_select_reports_profiles(store, tmp_path):
+    # reference: the select reports' ranking profiles (checked against networkx in
+    # test_report), averaged by hand over the rule's cells (budgets x repeats)
+    out = tmp_path / "prefer"
+    summary = study(store, out, budgets=[0.05, 0.2, 1], strategies=["degree", "random", "kcenter"],
+                    repeats=2, threads=1)
+    preferences = summary["preferences"]
+    assert set(preferences["rules"]) == {"degree", "random"}  # kcenter does not rank the pool
+    runs = {"degree": [select(store, "degree", k, threads=1) for k in (30, 120)],
+            "random": [select(store, "random", k, seed=r, threads=1) for k in (30, 120) for r in (0, 1)]}
+    for rule, reports in runs.items():
+        for i, part in enumerate(preferences["rules"][rule]):
+            for name in ("degree", "pagerank", "homophily"):
+                expected = np.mean([r["preference"]["parts"][i][name] for r in reports])
+                assert part[name] == pytest.approx(expected, rel=1e-12)
+    assert preferences["pool"] == runs["degree"][0]["diagnostics"]["pool"]
+    assert preferences["rules"]["degree"][0]["degree"] > preferences["pool"]["degree"]
+    saved = json.loads((out / "study.json").read_text())["preferences"]
+    assert saved["rules"]["random"] == pytest.approx(preferences["rules"]["random"])
+    text = (out / "report.md").read_text()
+    assert "## What each rule prefers" in text
+    for rule in ("degree", "random"):
+        for measure in ("degree", "PageRank", "homophily"):
+            assert sum(line.startswith(f"| {rule} | {measure} | ") for line in text.splitlines()) == 1

@@ -5,8 +5,10 @@ from scipy import stats
 from sklearn.datasets import load_iris
 from sklearn.linear_model import LogisticRegression
 
-from bigprune.selection.hardness import (age_scores, age_weights, density_scores, el2n_scores,
-                               entropy_scores, error_norms, percentiles, predictive_entropy)
+from bigprune.common.errors import InputError
+from bigprune.selection.hardness import (age_scores, age_weights, ddd_penalties, ddd_scores,
+                                         density_scores, el2n_scores, entropy_scores, error_norms,
+                                         percentiles, predictive_entropy)
 
 
 @pytest.fixture(scope="module")
@@ -155,3 +157,46 @@ def test_age_scores_mix_the_three_percentiles(iris):
     assert np.mean(np.abs(scores - expected) < 1e-9) > 0.9
     np.testing.assert_allclose(scores, expected, rtol=0, atol=(1 - gamma) / 2 * 2 / len(y) + 1e-12)
     assert info["weights"]["pagerank"] == pytest.approx(gamma, rel=1e-12)
+
+
+def test_ddd_penalties_are_the_chosen_and_its_grid_neighbours():
+    # reference: the proxy's grid (100, 10, 1, 0.1, 0.01, 0.001) read by hand
+    assert ddd_penalties(1.0) == [1.0, 10.0, 0.1]
+    assert ddd_penalties(100.0) == [100.0, 10.0]
+    assert ddd_penalties(0.001) == [0.001, 0.01]
+
+
+def test_ddd_is_the_held_out_misclassified_share_of_sklearn_proxies(iris):
+    # reference: Meding et al. (2022): the share of an ensemble's models that misclassify a
+    # node; here each pair's members are scikit-learn LogisticRegression(C = 1 / l2) fits on
+    # the documented halves (numpy default_rng([seed, pair]).permutation), and a node is scored
+    # by the members that did not train on it
+    x, y, _, _ = iris
+    n, pairs = len(y), 3
+    scores, info = ddd_scores(x, y, members=2 * pairs, seed=7, l2=1.0)
+    wrong, truth = np.zeros(n), np.zeros(n)
+    for pair, penalty in zip(range(pairs), [1.0, 10.0, 0.1]):
+        order = np.random.default_rng([7, pair]).permutation(n)
+        for train, held in ((order[:n // 2], order[n // 2:]), (order[n // 2:], order[:n // 2])):
+            model = LogisticRegression(C=1 / penalty, max_iter=10000, tol=1e-10).fit(
+                x[train].astype(np.float64), y[train])
+            p = model.predict_proba(x[held].astype(np.float64))
+            wrong[held] += model.classes_[p.argmax(1)] != y[held]
+            truth[held] += p[np.arange(len(held)), np.searchsorted(model.classes_, y[held])]
+    share = np.floor(scores * pairs + 1e-9) / pairs
+    assert np.mean(share == wrong / pairs) >= 0.99  # a near-tie may flip one argmax
+    assert 0 < share.mean() < 0.5 and info["penalties"] == [1.0, 10.0, 0.1]
+    tie_break = (scores - share) * (pairs + 1)
+    np.testing.assert_allclose(tie_break[share == wrong / pairs], (1 - truth / pairs)[share == wrong / pairs],
+                               atol=2e-3)
+    hardest = np.argsort(-scores, kind="stable")[:10]
+    assert (wrong[hardest] / pairs).min() >= np.sort(wrong / pairs)[-10]  # the hardest come first
+
+
+@pytest.mark.parametrize("members", [0, 1, 3, 2.0, True])
+def test_ddd_refuses_an_odd_or_missing_ensemble(iris, members):
+    x, y, _, _ = iris
+    with pytest.raises(InputError) as err:
+        ddd_scores(x, y, members=members)
+    assert str(err.value) == (f"--ensemble {members}: use an even count >= 2 (members come in "
+                              f"pairs trained on complementary halves of the pool)")

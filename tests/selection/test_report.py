@@ -116,3 +116,35 @@ def test_changes_match_python_sets():
         a, b = set(selected.tolist()), set(included.tolist())
         assert changes(selected, included) == {"kept": len(a & b), "added": len(a - b),
                                                "dropped": len(b - a)}
+
+
+@pytest.mark.parametrize("strategy", ["degree", "random"])
+def test_ranking_profile_by_fifths_matches_networkx(karate, strategy):
+    # reference: networkx degree, pagerank (alpha 0.85) and neighbour labels on Zachary's karate
+    # club, over the fifths of the ranking rebuilt by hand (degree: sort by networkx degree,
+    # ties to the lower index; random: numpy default_rng(seed).permutation of the pool)
+    store, graph, club, split = karate
+    set_threads(1)
+    pool = np.arange(20)
+    result = select(store, strategy, 4, seed=5, threads=1)
+    if strategy == "degree":
+        ranking = sorted(pool, key=lambda i: (-graph.degree(i), i))
+    else:
+        ranking = np.random.default_rng(5).permutation(pool)
+    rank = nx.pagerank(graph, alpha=0.85, tol=1e-12, weight=None)
+    profile = result["preference"]
+    assert [p["nodes"] for p in profile["parts"]] == [4] * 5
+    assert [(p["from"], p["to"]) for p in profile["parts"]] == [(i / 5, (i + 1) / 5) for i in range(5)]
+    for part, nodes in zip(profile["parts"], np.split(np.asarray(ranking), 5)):
+        assert part["degree"] == pytest.approx(np.mean([graph.degree(i) for i in nodes]))
+        assert part["pagerank"] == pytest.approx(np.mean([rank[i] for i in nodes]), rel=1e-6)
+        assert part["homophily"] == pytest.approx(networkx_homophily(graph, club, split, nodes))
+    assert profile["pool"] == result["diagnostics"]["pool"]
+    if strategy == "degree":
+        assert profile["parts"][0]["degree"] > profile["pool"]["degree"] > profile["parts"][-1]["degree"]
+
+
+def test_rules_that_do_not_rank_give_no_profile(karate):
+    store = karate[0]
+    assert "preference" not in select(store, "kcenter", 4, threads=1)
+    assert "preference" not in select(store, "stratified", 4, threads=1)

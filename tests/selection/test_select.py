@@ -17,6 +17,8 @@ from sklearn.linear_model import LogisticRegression
 
 from bigprune.cli import main
 from bigprune.common.errors import InputError
+from bigprune.selection.hardness import ddd_scores
+from bigprune.selection.influence import influence_scores
 from bigprune.selection.kcenter import greedy
 from bigprune.common.runtime import set_threads
 from bigprune.common.schema import NO_LABEL
@@ -118,7 +120,7 @@ def test_budget_larger_than_pool(store):
 def test_option_errors(store, tmp_path):
     cases = [
         (dict(strategy="best"), "--strategy best: unknown; use one of kmedian, kmeans, kcenter, kcenter-pool, "
-                                "random, stratified, degree, pagerank, entropy, el2n, age"),
+                                "random, stratified, degree, pagerank, entropy, el2n, age, ddd, influence"),
         (dict(targets="train"), "--targets train: unknown; use one of test, valid, unlabeled"),
         (dict(out=tmp_path / "sel.csv"), f"--out {tmp_path / 'sel.csv'}: must end in .parquet"),
         (dict(out=store.path / "sel.parquet"),
@@ -229,7 +231,8 @@ def test_every_rule_meets_budget_quotas_include_and_exclude(skewed, tmp_path, st
     assert result["pool"] == len(pool) - 5
 
 
-@pytest.mark.parametrize("strategy", ["random", "degree", "kcenter", "kcenter-pool", "entropy"])
+@pytest.mark.parametrize("strategy", ["random", "degree", "kcenter", "kcenter-pool", "entropy", "ddd",
+                                      "influence"])
 def test_quotas_bind_where_the_rule_alone_misses_a_class(skewed, strategy):
     # reference: collections.Counter of the labels, with and without the quota
     label = skewed.load("graph", "label")
@@ -324,6 +327,37 @@ def test_el2n_rule_ranks_by_its_scores(skewed):
                                    seed=3, l2=result["hardness"]["l2"]["l2"])
     np.testing.assert_array_equal(result["indices"], pool[np.argsort(-scores, kind="stable")][:25])
     assert result["hardness"]["runs"] == 5
+
+
+@pytest.mark.parametrize("rule", ["ddd", "influence"])
+def test_ddd_and_influence_rules_rank_by_their_scores(skewed, rule):
+    # reference: numpy stable argsort of the scores computed directly on the pool's last hop
+    # (the scores themselves are checked against scikit-learn in test_hardness / test_influence)
+    pool = np.flatnonzero(skewed.load("graph", "split") == 1)
+    rows = skewed.load("propagate", "hop_1")[pool]
+    labels = skewed.load("graph", "label")[pool]
+    options = {"ensemble": 4} if rule == "ddd" else {}
+    result = run(skewed, rule, 25, seed=3, **options)
+    l2 = result["hardness"]["l2"]["l2"]
+    scores = (ddd_scores(rows, labels, members=4, seed=3, l2=l2)[0] if rule == "ddd"
+              else influence_scores(rows, labels, l2=l2)[0])
+    np.testing.assert_array_equal(result["indices"], pool[np.argsort(-scores, kind="stable")][:25])
+    assert result["hardness"]["members" if rule == "ddd" else "method"] == (
+        4 if rule == "ddd" else "exact (Cholesky)")
+
+
+@pytest.mark.parametrize("ensemble,strategy,message", [
+    ("3", "ddd", "--ensemble 3: use an even count >= 2 (members come in pairs trained on "
+                 "complementary halves of the pool)"),
+    ("x", "ddd", "--ensemble x: use an even count >= 2 (members come in pairs trained on "
+                 "complementary halves of the pool)"),
+    ("4", "el2n", "--ensemble 4: only --strategy ddd has an ensemble; drop the option or use ddd")])
+def test_ensemble_option_errors(skewed, tmp_path, capsys, ensemble, strategy, message):
+    out = tmp_path / "x.parquet"
+    assert main(["select", "--store", str(skewed.path), "--strategy", strategy, "--budget", "5",
+                 "--ensemble", ensemble, "--out", str(out), "--quiet"]) == 2
+    assert capsys.readouterr().err.strip().endswith(message)
+    assert not out.exists()
 
 
 def test_kcenter_quota_swaps_keep_the_greedy_prefix(skewed):
