@@ -45,7 +45,7 @@ PROPAGATE = {"hops": ("int", False, 2), "norm": ("str", False, "sym"), "dtype": 
 # keep_previous: start from the selection already at ``out`` (last night's) as the include list.
 SELECT = {"strategy": ("str", True, None), "budget": ("number", False, None), "targets": ("str", False, "test"),
           "seed": ("int", False, 0), "out": ("path", True, None), "radius": ("number", False, None),
-          "cover": ("number", False, None),
+          "cover": ("number", False, None), "ensemble": ("int", False, None),
           "min_per_class": ("number", False, None), "include": ("path", False, None),
           "exclude": ("path", False, None), "keep_previous": ("bool", False, False)}
 STUDY = {"out": ("path", True, None), "budgets": ("numbers", False, [0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1.0]),

@@ -78,7 +78,7 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
         raise InputError(f"--targets {targets}: unknown; use one of {', '.join(TARGETS)}")
     radius = check_radius(radius, strategy, budget)
     cover = _check_cover(cover, radius)
-    ensemble = _check_ensemble(ensemble, strategy)
+    ensemble = check_ensemble(ensemble, strategy)
     if include is not None and initial is not None:
         raise InputError(f"--include {include}: give either an include file or initial ids, not both")
     out = _check_out(out, store)
@@ -262,18 +262,20 @@ def _check_cover(cover, radius):
     return value
 
 
-def _check_ensemble(ensemble, strategy):
+def check_ensemble(ensemble, strategy, names=FLAGS):
+    """``ddd``'s ensemble size: an even count >= 2, or the default when None."""
     if ensemble is None:
         return DDD_MEMBERS
+    label = names.label("ensemble", ensemble)
     if strategy != "ddd":
-        raise InputError(f"--ensemble {ensemble}: only --strategy ddd has an ensemble; drop the "
+        raise InputError(f"{label}: only {names.hint('strategy')} ddd has an ensemble; drop the "
                          f"option or use ddd")
     try:
         value = int(str(ensemble).strip()) if not isinstance(ensemble, (bool, float)) else 0
     except ValueError:
         value = 0
     if value < 2 or value % 2:
-        raise InputError(f"--ensemble {ensemble}: use an even count >= 2 (members come in pairs "
+        raise InputError(f"{label}: use an even count >= 2 (members come in pairs "
                          f"trained on complementary halves of the pool)")
     return int(value)
 

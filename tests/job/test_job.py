@@ -55,3 +55,17 @@ def test_cover_from_the_job_file(data):
     # reference: the job file's entries as written above; one node brings every target within 1e9
     assert report["constraints"]["radius"] == 1e9 and report["constraints"]["cover"] == 0.5
     assert report["selected"] == 1 and report["coverage"]["within"]["asked"] == 1.0
+
+
+def test_ensemble_from_the_job_file_is_checked_and_used(data, capsys):
+    # reference: the job file's entries as written here
+    job = write_job(data, 'strategy = "ddd"\nbudget = 30\nensemble = 4\nout = "picks/d.parquet"')
+    assert main(["check", str(job)]) == 0
+    assert main(["run", str(job), "--quiet"]) == 0
+    assert json.loads((data / "picks/d.json").read_text())["hardness"]["members"] == 4
+    capsys.readouterr()
+    bad = write_job(data, 'strategy = "ddd"\nbudget = 30\nensemble = 3\nout = "picks/e.parquet"')
+    assert main(["check", str(bad)]) == 2
+    assert capsys.readouterr().err == (f"bigprune check: error: {bad}: [[select]] #1: ensemble = 3: use an "
+                                       f"even count >= 2 (members come in pairs trained on complementary "
+                                       f"halves of the pool)\n")
