@@ -281,7 +281,7 @@ def _check_selections(job, nodes):
 
     from ..common.schema import NO_LABEL, SPLIT_CODES
     from ..learning.study import check_budget_sizes, parse_budgets, parse_strategies
-    from ..selection.select import TARGETS, check_constraints, check_ensemble, check_radius
+    from ..selection.select import TARGETS, check_constraints, check_cover, check_ensemble, check_radius
     from ..selection.strategies import STRATEGIES
 
     ids, split, label = nodes
@@ -297,6 +297,7 @@ def _check_selections(job, nodes):
         _check_choice(names, "strategy", entry["strategy"], STRATEGIES)
         _check_targets(names, entry["targets"], split, TARGETS)
         radius = check_radius(entry["radius"], entry["strategy"], entry["budget"], names)
+        check_cover(entry["cover"], radius, names)
         check_ensemble(entry["ensemble"], entry["strategy"], names)
         include = entry["include"]
         if entry["keep_previous"] and Path(entry["out"]).exists():

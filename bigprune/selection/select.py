@@ -77,7 +77,7 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
     if targets not in TARGETS:
         raise InputError(f"--targets {targets}: unknown; use one of {', '.join(TARGETS)}")
     radius = check_radius(radius, strategy, budget)
-    cover = _check_cover(cover, radius)
+    cover = check_cover(cover, radius)
     ensemble = check_ensemble(ensemble, strategy)
     if include is not None and initial is not None:
         raise InputError(f"--include {include}: give either an include file or initial ids, not both")
@@ -245,8 +245,8 @@ def check_radius(radius, strategy, budget, names=FLAGS):
     return value
 
 
-def _check_cover(cover, radius):
-    """The share of targets ``--cover`` asks for, as a float in (0, 1], or None (every one)."""
+def check_cover(cover, radius, names=FLAGS):
+    """The share of targets ``cover`` asks for, as a float in (0, 1], or None (every one)."""
     if cover is None:
         return None
     text = str(cover).strip()
@@ -254,11 +254,12 @@ def _check_cover(cover, radius):
         value = float(text[:-1]) / 100 if text.endswith("%") else float(text)
     except ValueError:
         value = math.nan
+    label = names.label("cover", cover)
     if isinstance(cover, bool) or not 0 < value <= 1:
-        raise InputError(f"--cover {cover}: use a share of the targets in (0, 1], e.g. 0.95 or 95%")
+        raise InputError(f"{label}: use a share of the targets in (0, 1], e.g. 0.95 or 95%")
     if radius is None:
-        raise InputError(f"--cover {cover}: goes with --radius (the share of targets to bring "
-                         f"within it); give --radius R too")
+        raise InputError(f"{label}: goes with {names.hint('radius')} (the share of targets to "
+                         f"bring within it); give {names.hint('radius')} R too")
     return value
 
 

@@ -69,3 +69,13 @@ def test_ensemble_from_the_job_file_is_checked_and_used(data, capsys):
     assert capsys.readouterr().err == (f"bigprune check: error: {bad}: [[select]] #1: ensemble = 3: use an "
                                        f"even count >= 2 (members come in pairs trained on complementary "
                                        f"halves of the pool)\n")
+
+
+def test_check_refuses_a_cover_without_radius_naming_the_entry(data, capsys):
+    # reference: the job file's entry as written here; run makes the same check
+    job = write_job(data, 'strategy = "kcenter"\nbudget = 10\ncover = 0.9\nout = "picks/f.parquet"')
+    capsys.readouterr()
+    assert main(["check", str(job)]) == 2
+    assert capsys.readouterr().err == (f"bigprune check: error: {job}: [[select]] #1: cover = 0.9: goes "
+                                       f"with radius (the share of targets to bring within it); give "
+                                       f"radius R too\n")
