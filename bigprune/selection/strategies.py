@@ -6,9 +6,11 @@ must-include list, possibly empty) always comes first. In radius mode (``kcenter
 count is whatever the radius needs. Per-class quotas hold for every rule:
 
 - ranking rules (``random``, ``degree``, ``pagerank``, ``entropy``, ``el2n``, ``age``, ``ddd``,
-  ``influence``): the
-  best-ranked nodes of each under-served class are reserved first, the remaining slots go to
-  the best-ranked of the rest (the top-k with the fewest swaps);
+  ``influence``): the best-ranked nodes of each under-served class are reserved first, the
+  remaining slots go to the best-ranked of the rest (the top-k with the fewest swaps);
+- ``kmedian`` / ``kmeans``: quotas are met as they pick: once the picks left equal the picks the
+  quotas still need, only nodes of classes still short are offered (the greedy's next best of
+  those, or the cluster's nearest of those);
 - ``stratified``: the class counts are the largest-remainder rounding of the pool's
   proportions, raised to the quotas (the raise is paid by the other classes, proportionally);
 - ``kcenter`` / ``kcenter-pool``: the greedy runs unconstrained, then its latest picks from
