@@ -38,7 +38,8 @@ TRAIN_PER_LIST = 40
 # The IVF index is trained with a fixed seed, so that the rule's picks do not depend on --seed.
 INDEX_SEED = 0
 # Bytes held per listed pair: the lists by target while they are built (int32 candidate, float32
-# distance), the same by candidate, and FAISS's answers for one chunk (int64, float32).
+# distance) and the same by candidate. FAISS's answers (int64, float32 per pair) are held for one
+# chunk of targets at a time and counted with the chunk (strategies.kmedian).
 PAIR_BYTES = 16
 
 
