@@ -41,19 +41,17 @@ def changes(selected, included):
     return {"kept": kept, "added": int(len(selected)) - kept, "dropped": int(len(included)) - kept}
 
 
-def homophily(store, nodes, window_rows):
-    """Mean label homophily of ``nodes`` (sorted int64 dense indices).
-
-    A node's homophily is the share of its labelled neighbours (split train or valid, with a
-    label) that carry its own label; the mean runs over nodes with at least one labelled
-    neighbour (None when there is none). The CSR is read one window of rows at a time.
-    """
+def node_homophily(store, nodes, window_rows):
+    """Each node's label homophily, float64 (len(nodes),) for ``nodes`` (sorted int64 dense
+    indices): the share of its labelled neighbours (split train or valid, with a label) that
+    carry its own label; NaN for a node with no labelled neighbour. The CSR is read one window
+    of rows at a time, once."""
     split = store.load("graph", "split", mmap=False)
     label = store.load("graph", "label", mmap=False)
     known = np.isin(split, [SPLIT_CODES["train"], SPLIT_CODES["valid"]]) & (label != NO_LABEL)
     neighbour_label = np.where(known, label, NO_LABEL).astype(np.int64)
     indptr = store.load("graph", "indptr", mmap=False)
-    total, counted = 0.0, 0
+    out = np.full(len(nodes), np.nan)
     starts = [a for a, _ in chunk_ranges(len(indptr) - 1, window_rows)]
     cuts = list(np.searchsorted(nodes, starts)) + [len(nodes)]
     for first, lo, hi in zip(starts, cuts[:-1], cuts[1:]):
@@ -69,22 +67,28 @@ def homophily(store, nodes, window_rows):
         agreement(indptr[first:last + 1] - indptr[first], window, neighbour_label, NO_LABEL,
                   part, first, label[part], same, labelled)
         seen = labelled > 0
-        total += float(np.sum(same[seen] / labelled[seen]))
-        counted += int(seen.sum())
-    return total / counted if counted else None
+        out[lo:hi][seen] = same[seen] / labelled[seen]
+    return out
 
 
-def diagnostics(store, selected, pool, window_rows):
-    """Mean degree, PageRank and homophily of the selection beside the whole pool."""
-    describe = _describer(store, window_rows)
+def homophily(store, nodes, window_rows):
+    """Mean label homophily of ``nodes`` (sorted int64 dense indices) over those with at least
+    one labelled neighbour (:func:`node_homophily`); None when there is none."""
+    return _mean_seen(node_homophily(store, nodes, window_rows))
+
+
+def diagnostics(describe, selected, pool):
+    """Mean degree, PageRank and homophily of the selection beside the whole pool.
+
+    describe : a :func:`describer` of the pool."""
     return {"selected": describe(selected), "pool": describe(pool)}
 
 
-def ranking_profile(store, ranking, pool, window_rows, parts=5):
+def ranking_profile(describe, ranking, pool, parts=5):
     """What a ranking rule prefers: mean degree, PageRank and homophily of each of ``parts``
-    consecutive slices of ``ranking`` (the whole pool, best first; slices differ in size by at
-    most one node, as ``numpy.array_split``), beside the whole pool."""
-    describe = _describer(store, window_rows)
+    consecutive slices of ``ranking`` (pool nodes, best first; slices differ in size by at
+    most one node, as ``numpy.array_split``), beside the whole pool (``describe``: a
+    :func:`describer` of the pool)."""
     slices = np.array_split(np.asarray(ranking, dtype=np.int64), parts)
     shares, at = [], 0
     for part in slices:
@@ -94,14 +98,22 @@ def ranking_profile(store, ranking, pool, window_rows, parts=5):
     return {"parts": shares, "pool": describe(pool)}
 
 
-def _describer(store, window_rows):
-    """A function: nodes -> their mean degree, PageRank and homophily."""
+def describer(store, pool, window_rows):
+    """A function: nodes of ``pool`` -> their mean degree, PageRank and homophily. Every pool
+    node's homophily is computed once (one pass over the CSR) and averaged per call."""
+    pool = np.sort(pool)
     degree = np.diff(store.load("graph", "indptr", mmap=False))
     rank = store.load("propagate", "pagerank", mmap=False)
+    values = node_homophily(store, pool, window_rows)
 
     def describe(nodes):
         nodes = np.sort(nodes)
         return {"degree": float(degree[nodes].mean()), "pagerank": float(rank[nodes].mean()),
-                "homophily": homophily(store, nodes, window_rows)}
+                "homophily": _mean_seen(values[np.searchsorted(pool, nodes)])}
 
     return describe
+
+
+def _mean_seen(values):
+    seen = ~np.isnan(values)
+    return float(values[seen].mean()) if seen.any() else None

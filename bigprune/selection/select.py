@@ -17,7 +17,7 @@ from ..common.jsonout import dumps
 from ..common.options import FLAGS, read_budget
 from ..common.memory import FIXED_OVERHEAD, format_size, parse_size, peak_rss, rows_per_chunk, working_memory
 from ..common.classes import class_names
-from .report import CAUTION, changes, class_counts, coverage, diagnostics, ranking_profile
+from .report import CAUTION, changes, class_counts, coverage, describer, diagnostics, ranking_profile
 from ..common.runtime import set_threads
 from .kcenter import GROUP_ROWS, PRODUCT_ITEMS, cover
 from ..common.schema import NO_LABEL, NO_SPLIT, SPLIT_CODES
@@ -447,10 +447,10 @@ def _select(problem, strategy, label, out, started, extra):
         report["class_names"] = {c: names[c] for c in report["classes"]}
     if "include" in extra["constraints"]:
         report["changed"] = changes(order, problem.initial)
-    report["diagnostics"] = diagnostics(problem.store, order, problem.pool, problem.window_rows)
+    describe = describer(problem.store, problem.pool, problem.window_rows)
+    report["diagnostics"] = diagnostics(describe, order, problem.pool)
     if ranking is not None:
-        report["preference"] = ranking_profile(problem.store, ranking, problem.pool,
-                                               problem.window_rows)
+        report["preference"] = ranking_profile(describe, ranking, problem.pool)
     report.update(info)
     report["caution"] = CAUTION
     report["seconds"] = round(time.perf_counter() - started, 3)

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from scipy.spatial.distance import cdist
 
-from bigprune.selection.report import changes, class_counts, coverage, diagnostics, homophily
+from bigprune.selection.report import changes, class_counts, coverage, describer, diagnostics, homophily
 from bigprune.common.runtime import set_threads
 from bigprune.common.schema import NO_LABEL
 from bigprune.selection.select import select
@@ -60,7 +60,7 @@ def test_diagnostics_match_networkx(karate):
     set_threads(1)
     selected = np.array([33 - 14, 2, 5])  # dense indices, not sorted on purpose
     pool = np.arange(20)
-    out = diagnostics(store, selected, pool, 7)
+    out = diagnostics(describer(store, pool, 7), selected, pool)
     rank = nx.pagerank(graph, alpha=0.85, tol=1e-12, weight=None)
     for name, nodes in (("selected", selected), ("pool", pool)):
         assert out[name]["degree"] == pytest.approx(np.mean([graph.degree(i) for i in nodes]))
