@@ -183,3 +183,12 @@ def citeseer(tmp_path_factory):
         return built[protocol]
 
     return build
+
+
+@pytest.fixture(scope="session")
+def dask_client():
+    """A ``local:2`` cluster (two worker processes, one thread each) shared by the cluster tests."""
+    from bigprune.cluster.connect import cluster
+
+    with cluster("local:2") as client:
+        yield client

@@ -1,0 +1,45 @@
+"""Mapping a stage's pieces of work over the cluster's workers, with a progress bar.
+
+Tasks write their own windows of the stage's files with plain file I/O and return small
+results; the client alone commits. A task must give the same bytes when run again: a worker
+lost mid-task has its tasks rerun elsewhere (Dask's ``distributed.scheduler.allowed-failures``,
+3 by default, bounds how often). A task that raises is not retried: the error is the answer.
+"""
+import uuid
+
+from ..common.runtime import progress
+
+
+def run_tasks(client, function, pieces, desc, unit="task"):
+    """``[function(*piece) for piece in pieces]``, run as Dask tasks; results in order.
+
+    The first task to fail cancels the rest and its exception is raised here (a BigpruneError
+    keeps its type, so its one line and exit status reach the user as on one server).
+    """
+    from distributed import as_completed
+
+    pieces = list(pieces)
+    run = uuid.uuid4().hex[:8]
+    futures = [client.submit(function, *piece, key=f"bigprune-{desc.replace(' ', '-')}-{run}-{i}",
+                             pure=False)
+               for i, piece in enumerate(pieces)]
+    order = {future.key: i for i, future in enumerate(futures)}
+    results = [None] * len(futures)
+    try:
+        with progress(total=len(futures), desc=desc, unit=unit) as bar:
+            for future in as_completed(futures, loop=client.loop):
+                results[order[future.key]] = future.result()
+                bar.update(1)
+    finally:
+        client.cancel(futures)
+    return results
+
+
+def worker_threads():
+    """The threads this worker gives a task (its ``--nthreads``; 1 outside a worker)."""
+    from distributed import get_worker
+
+    try:
+        return get_worker().state.nthreads
+    except ValueError:
+        return 1
