@@ -10,6 +10,7 @@ import argparse
 import errno
 import os
 import sys
+from contextlib import nullcontext
 
 from . import __version__
 from .common.errors import BigpruneError
@@ -25,13 +26,18 @@ EXAMPLES = {
     "ingest": """examples:
   bigprune ingest --edges data/edges/ --nodes data/nodes.parquet --store store/
   bigprune ingest --edges 'data/edges/day=*/*.parquet' --nodes nodes.parquet \\
-                  --features emb.npy --store store/ --memory-budget 8G --threads 2""",
+                  --features emb.npy --store store/ --memory-budget 8G --threads 2
+  bigprune ingest --edges /shared/edges/ --nodes /shared/nodes.parquet --store /shared/store/ \\
+                  --cluster local:2""",
     "propagate": """examples:
   bigprune propagate --store store/
-  bigprune propagate --store store/ --hops 3 --norm rw""",
+  bigprune propagate --store store/ --hops 3 --norm rw
+  bigprune propagate --store /shared/store/ --cluster scheduler.internal:8786 --memory-budget 8G""",
     "run": """examples:
   bigprune run job.toml
   bigprune run job.toml --dry-run      # which stages would run, and why
+  bigprune run job.toml --cluster local:2             # two worker processes on this machine
+  bigprune run job.toml --cluster scheduler.internal:8786   # or: cluster = "..." in the job file
 
 exit status: 0 done, 2 bad input or job file, 3 memory budget too small or disk full, 4 store in use""",
     "status": """examples:
@@ -45,6 +51,7 @@ exit status: 0 done, 2 bad input or job file, 3 memory budget too small or disk 
                  --answers answers.parquet --tolerance 0.005
 
   bigprune study --store store/ --out study/ --l2 1             # one fixed penalty for every cell
+  bigprune study --store /shared/store/ --out /shared/study/ --cluster local:2   # a task per cell
 
 Each cell's L2 penalty is chosen on the valid split (100 .. 0.001) unless --l2 fixes it; when the
 study also scores on the valid split (no --answers), that choice makes its accuracies optimistic.
@@ -62,7 +69,9 @@ optimistic, the --answers score is not); with no valid nodes it is 1 (scikit-lea
   bigprune select --store store/ --strategy random --budget 5000 --seed 1 --out random.parquet
   bigprune select --store store/ --strategy kmedian --budget 0.05 --include yesterday.parquet \\
                   --exclude flagged.parquet --min-per-class 20 --out today.parquet
-  bigprune select --store store/ --strategy kcenter --radius 9 --cover 0.9 --out within.parquet""",
+  bigprune select --store store/ --strategy kcenter --radius 9 --cover 0.9 --out within.parquet
+  bigprune select --store /shared/store/ --strategy kmedian --budget 0.05 --out picks.parquet \\
+                  --cluster local:2        # the targets in parts, one task each, then a merge""",
 }
 
 
@@ -82,6 +91,13 @@ def _parser():
     common.add_argument("--threads", type=int, default=None, metavar="N",
                         help="worker threads (default: all available cores)")
 
+    clustered = argparse.ArgumentParser(add_help=False)
+    clustered.add_argument("--cluster", default=None, metavar="ADDRESS",
+                           help="run the work as tasks on a Dask cluster: a scheduler's HOST:PORT "
+                                "(the store on a file system every worker sees at the same path), "
+                                "or local:N for N worker processes on this machine; "
+                                "--memory-budget is then per worker")
+
     parser = _Parser(prog="bigprune", description="Choose the few labelled nodes worth training a node "
                      "classifier on: ingest a graph, smooth its features, select and report.")
     parser.add_argument("--version", action="version", version=f"bigprune {__version__}")
@@ -96,7 +112,7 @@ def _parser():
     p.add_argument("--nodes", type=int, default=None, metavar="N", help="listings to generate")
     p.add_argument("--seed", type=int, default=0, metavar="S", help="random seed (default 0)")
 
-    p = sub.add_parser("ingest", parents=[common], formatter_class=fmt, epilog=EXAMPLES["ingest"],
+    p = sub.add_parser("ingest", parents=[common, clustered], formatter_class=fmt, epilog=EXAMPLES["ingest"],
                        help="turn Parquet edge partitions and a node table into a store")
     p.add_argument("--edges", required=True, metavar="PATH", help="Parquet file, directory or glob (src, dst[, weight])")
     p.add_argument("--nodes", required=True, metavar="PATH", help="Parquet node table (node_id, split, label, features)")
@@ -112,7 +128,7 @@ def _parser():
                                 ("--features-col", "features", "--nodes column of the feature lists")):
         p.add_argument(flag, default=None, metavar="NAME", help=f"{what} (default {default})")
 
-    p = sub.add_parser("propagate", parents=[common], formatter_class=fmt, epilog=EXAMPLES["propagate"],
+    p = sub.add_parser("propagate", parents=[common, clustered], formatter_class=fmt, epilog=EXAMPLES["propagate"],
                        help="smooth features over the graph (SGC hops) and compute PageRank")
     p.add_argument("--store", required=True, metavar="DIR")
     p.add_argument("--hops", type=int, default=2, metavar="K", help="propagation hops (default 2)")
@@ -124,7 +140,7 @@ def _parser():
                    help="compute only the rows that the training pool and the valid and test "
                         "splits need; the others are NaN (default: every row)")
 
-    p = sub.add_parser("select", parents=[common], formatter_class=fmt, epilog=EXAMPLES["select"],
+    p = sub.add_parser("select", parents=[common, clustered], formatter_class=fmt, epilog=EXAMPLES["select"],
                        help="pick a training subset and report what it covers")
     p.add_argument("--store", required=True, metavar="DIR")
     p.add_argument("--strategy", required=True, metavar="NAME",
@@ -171,7 +187,7 @@ def _parser():
                         "first (default off: it inflates rare features of sparse inputs such as "
                         "bags of words)")
 
-    p = sub.add_parser("study", parents=[common], formatter_class=fmt, epilog=EXAMPLES["study"],
+    p = sub.add_parser("study", parents=[common, clustered], formatter_class=fmt, epilog=EXAMPLES["study"],
                        help="train the proxy on each rule's subsets at several budgets; recommend one")
     p.add_argument("--store", required=True, metavar="DIR")
     p.add_argument("--out", required=True, metavar="DIR", help="folder for the table, fits, plots and report")
@@ -191,7 +207,7 @@ def _parser():
     p.add_argument("--standardize", action="store_true",
                    help="standardise each feature on the cell's training nodes first (default off)")
 
-    p = sub.add_parser("run", parents=[common], formatter_class=fmt, epilog=EXAMPLES["run"],
+    p = sub.add_parser("run", parents=[common, clustered], formatter_class=fmt, epilog=EXAMPLES["run"],
                        help="run a job file: ingest, propagate, select, skipping what is current")
     p.add_argument("job", metavar="JOB.toml")
     p.add_argument("--dry-run", action="store_true", help="print the plan and change nothing")
@@ -241,7 +257,8 @@ def _run(args, emit):
 
         wants_json = getattr(args, "json", False)
         if args.command == "run":
-            steps = run_job(args.job, dry_run=args.dry_run, echo=_to_stderr if wants_json else emit)
+            steps = run_job(args.job, dry_run=args.dry_run, echo=_to_stderr if wants_json else emit,
+                            cluster=args.cluster)
             return {"job": args.job, "dry_run": args.dry_run, "steps": [_step(s) for s in steps]} \
                 if wants_json else None
         if args.command == "check":
@@ -251,7 +268,25 @@ def _run(args, emit):
             return store_state(args.store)
         emit(store_status(args.store))
         return None
+    with _client(args) as client:
+        return _stage(args, client)
+
+
+def _client(args):
+    """The Dask client of ``--cluster``, closed after the command; without it, None (and Dask
+    is never imported)."""
+    if getattr(args, "cluster", None) is None:
+        return nullcontext(None)
+    from .cluster.connect import cluster
+
+    return cluster(args.cluster)
+
+
+def _stage(args, client):
+    """One stage's command: its library call, with the cluster's client when there is one."""
     opts = {"memory_budget": args.memory_budget, "threads": args.threads}
+    if client is not None:
+        opts["client"] = client
     if args.command == "demo":
         from .scenario.demo import demo
 

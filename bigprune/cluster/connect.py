@@ -12,7 +12,7 @@ from pathlib import Path
 from ..common.errors import InputError
 
 LOCAL = re.compile(r"local:(\d+)")
-CONNECT_SECONDS = 20
+CONNECT_SECONDS = 10
 
 
 def parse_address(address, option="--cluster"):
@@ -68,6 +68,7 @@ def check_store(client, root, option="--cluster"):
     that name fails, as does one that cannot reach the folder at all.
     """
     root = Path(root).resolve()
+    created = not root.exists()
     root.mkdir(parents=True, exist_ok=True)
     token = uuid.uuid4().hex
     probe = root / f".cluster-probe-{os.getpid()}-{token[:8]}"
@@ -76,6 +77,8 @@ def check_store(client, root, option="--cluster"):
         seen = client.run(_read_probe, str(probe))
     finally:
         probe.unlink(missing_ok=True)
+        if created:  # a refused run leaves no folder behind; the stage makes it again
+            root.rmdir()
     if not seen:
         raise InputError(f"{option}: the cluster has no workers; start some with `dask worker ADDRESS`")
     for worker, (found, why) in sorted(seen.items()):

@@ -7,6 +7,7 @@ lost mid-task has its tasks rerun elsewhere (Dask's ``distributed.scheduler.allo
 """
 import uuid
 
+from ..common.errors import BudgetError
 from ..common.runtime import progress
 
 
@@ -14,9 +15,11 @@ def run_tasks(client, function, pieces, desc, unit="task"):
     """``[function(*piece) for piece in pieces]``, run as Dask tasks; results in order.
 
     The first task to fail cancels the rest and its exception is raised here (a BigpruneError
-    keeps its type, so its one line and exit status reach the user as on one server).
+    keeps its type, so its one line and exit status reach the user as on one server). A task
+    whose workers keep dying is a BudgetError (exit 3).
     """
     from distributed import as_completed
+    from distributed.scheduler import KilledWorker
 
     pieces = list(pieces)
     run = uuid.uuid4().hex[:8]
@@ -30,6 +33,10 @@ def run_tasks(client, function, pieces, desc, unit="task"):
             for future in as_completed(futures, loop=client.loop):
                 results[order[future.key]] = future.result()
                 bar.update(1)
+    except KilledWorker:
+        raise BudgetError(f"{desc}: every worker that ran one of its tasks died (out of memory, or "
+                          "killed); check the workers' memory and logs, then rerun: the store keeps "
+                          "its last committed state") from None
     finally:
         client.cancel(futures)
     return results

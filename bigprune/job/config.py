@@ -8,6 +8,7 @@ Example::
     store = "store"
     memory_budget = "4GiB"
     threads = 2
+    cluster = "scheduler.internal:8786"   # optional: run the stages as Dask tasks (or "local:2")
 
     [ingest]
     edges = "data/edges"
@@ -35,7 +36,7 @@ from ..common.options import Names, read_budget
 
 # key: (type, required, default); "path" values are resolved against the file's folder.
 TOP = {"store": ("path", True, None), "memory_budget": ("size", False, DEFAULT_BUDGET),
-       "threads": ("int", False, None), "log": ("path", False, None)}
+       "threads": ("int", False, None), "log": ("path", False, None), "cluster": ("str", False, None)}
 # *_col: the input columns to read instead of src, dst, node_id, label and features (see --src-col).
 INGEST = {"edges": ("path", True, None), "nodes": ("path", True, None), "features": ("path", False, None),
           "drop_unknown": ("bool", False, False), "src_col": ("str", False, None), "dst_col": ("str", False, None),
@@ -126,6 +127,10 @@ def _check_meanings(path, job):
     """Values whose meaning needs no data: the memory budget's unit and every budget's rule
     (a TOML float is a fraction in (0, 1], an int a count)."""
     parse_size(str(job["memory_budget"]), f"{path}: top level: memory_budget =")
+    if job["cluster"] is not None:
+        from ..cluster.connect import parse_address
+
+        parse_address(job["cluster"], f"{path}: top level: cluster =")
     for index, entry in enumerate(job["select"]):
         names = select_names(path, index)
         for key in ("budget", "min_per_class"):

@@ -5,6 +5,7 @@ whatever it feeds runs again after it. Each stage commits atomically, so a job k
 point resumes on the next run. One JSON line per stage goes to the log for the scheduler.
 """
 import time
+from contextlib import ExitStack
 from pathlib import Path
 
 from .config import load_job, select_names, study_names
@@ -100,9 +101,18 @@ def _plan_study(entry, upstream, outputs):
             "why": why or "output current", "entry": entry, "params": params}
 
 
-def run_job(path, dry_run=False, echo=print):
-    """Run (or with ``dry_run`` only print) the job in ``path``; return the plan with outcomes."""
+def run_job(path, dry_run=False, echo=print, cluster=None, client=None):
+    """Run (or with ``dry_run`` only print) the job in ``path``; return the plan with outcomes.
+
+    cluster : a Dask scheduler address or ``local:N`` (overrides the job file's ``cluster``);
+        the cluster is reached only once a step has to run. client : a ``distributed.Client``
+        to use instead.
+    """
     job = load_job(path)
+    if cluster is not None:
+        from ..cluster.connect import parse_address
+
+        parse_address(cluster)
     store = Store(job["store"])
     if dry_run:
         steps = plan_job(job)
@@ -115,8 +125,9 @@ def run_job(path, dry_run=False, echo=print):
     opts = {"memory_budget": job["memory_budget"], "threads": job["threads"]}
     began = time.time()
     log = Path(job["log"]) if job["log"] else Path(job["store"]).parent / "bigprune-log.jsonl"
-    with store.locked():
+    with store.locked(), ExitStack() as stack:
         steps = plan_job(job)
+        address = cluster or job["cluster"]
         checked = False
         for step in steps:
             if not step["run"]:
@@ -128,6 +139,8 @@ def run_job(path, dry_run=False, echo=print):
                 # error names the job file's entry before any selection is computed
                 _check_selections(job, _store_nodes(store))
                 checked = True
+            if "client" not in opts and (client is not None or address is not None):
+                opts["client"] = client or stack.enter_context(_cluster(address, cluster, job))
             echo(f"run   {step['stage']:<40} {step['why']}")
             started = time.time()
             try:
@@ -154,6 +167,13 @@ def run_job(path, dry_run=False, echo=print):
             step["result"] = result
     echo(_summary_line(steps, time.time() - began))
     return steps
+
+
+def _cluster(address, flag, job):
+    """The client of the job's cluster (``--cluster`` or the job file's key, named in errors)."""
+    from ..cluster.connect import cluster
+
+    return cluster(address, "--cluster" if flag else f"{job['path']}: top level: cluster =")
 
 
 def _summary_line(steps, seconds):
