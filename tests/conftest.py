@@ -1,6 +1,7 @@
 """Shared fixtures: stores built straight from arrays, so stage tests need no ingest; and the
 real Citeseer citation graph (tests/data/citeseer/), built through ingest and propagate."""
 import hashlib
+import socket
 from collections import namedtuple
 from pathlib import Path
 
@@ -93,6 +94,20 @@ def small_store(tmp_path):
     label = np.where(split == 3, NO_LABEL, label)
     label[240:] = NO_LABEL
     return write_graph_store(tmp_path / "store", adj, features, split, label)
+
+
+def free_port():
+    """A local port nothing listens on (bound, then released): an address no scheduler answers."""
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        return sock.getsockname()[1]
+
+
+def file_digests(folder, names=None):
+    """sha256 of each file in ``folder`` (or of ``names`` there), by name."""
+    folder = Path(folder)
+    names = sorted(p.name for p in folder.iterdir() if p.is_file()) if names is None else names
+    return {name: hashlib.sha256((folder / name).read_bytes()).hexdigest() for name in names}
 
 
 def tree_digest(root):

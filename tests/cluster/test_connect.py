@@ -1,6 +1,5 @@
 """Reaching a cluster: addresses, a scheduler that does not answer, a store the workers cannot
 see, and Dask staying out of runs without --cluster."""
-import socket
 import subprocess
 import sys
 import tempfile
@@ -9,7 +8,7 @@ from pathlib import Path
 import pytest
 
 from bigprune.cli import main
-from conftest import tree_digest
+from conftest import free_port, tree_digest
 
 
 def one_line(capsys):
@@ -39,13 +38,6 @@ def test_the_job_files_cluster_key_is_checked_by_check_and_run(tmp_path, capsys)
         assert one_line(capsys) == (f"bigprune {argv[0]}: error: {job}: top level: cluster = 'local:0': "
                                     "local:N needs at least one worker\n")
     assert sorted(p.name for p in tmp_path.iterdir()) == ["job.toml"]
-
-
-def free_port():
-    """A port nothing listens on (bound, then released)."""
-    with socket.socket() as sock:
-        sock.bind(("127.0.0.1", 0))
-        return sock.getsockname()[1]
 
 
 def test_a_scheduler_that_does_not_answer_exits_2(small_store, capsys):
