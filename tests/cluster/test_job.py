@@ -3,7 +3,6 @@ store bytes, the same selections for the rules run on the client, distributed ru
 of the single server's objective, and a second run that skips every step without reaching the
 cluster at all."""
 import json
-from pathlib import Path
 
 import pytest
 
