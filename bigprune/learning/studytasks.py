@@ -30,13 +30,21 @@ def run_cells(client, todo, context, folder):
 
     if not todo:
         return []
-    shared = client.scatter([dict(context, run=uuid.uuid4().hex)], broadcast=True, hash=False)[0]
+    run = uuid.uuid4().hex
+    shared = client.scatter([dict(context, run=run)], broadcast=True, hash=False)[0]
     try:
         return run_tasks(client, run_cell_task,
                          [(shared, cell, str(Path(folder) / f"{cell['name']}.json")) for cell in todo],
                          desc="study", unit="cell")
     finally:
         client.cancel([shared])
+        client.run(_forget, run, on_error="ignore")  # the workers' memory is the next stage's again
+
+
+def _forget(run):
+    """On a worker: drop the study run's loaded context."""
+    with _LOADING:
+        _LOADED.pop(run, None)
 
 
 def run_cell_task(context, cell, path):
@@ -57,7 +65,7 @@ def _worker_context(context):
 
     with _LOADING:
         if context["run"] not in _LOADED:
-            _LOADED.clear()  # a finished run's features leave before this run's are read
+            _LOADED.clear()  # a run whose client died left its features: they go before these come
             threads = worker_threads()
             at_once, memory = _split_budget(context["memory"], context["need"], threads, threads)
             loaded = _load_context(dict(context, memory=memory,
