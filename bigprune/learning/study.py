@@ -9,7 +9,8 @@ unless one is given.
 
 Each finished cell is written atomically to ``OUT/cells/<cell>.json`` with a key over everything
 that decides its result, so a rerun skips cells whose key matches and a killed study resumes.
-Cells run in a process pool sized from the memory budget, one numba/FAISS/BLAS thread each.
+Cells run in a process pool sized from the memory budget, one numba/FAISS/BLAS thread each, or
+with a Dask client as tasks on the cluster's workers (:mod:`bigprune.learning.studytasks`).
 The outputs (table, fits, recommendation, plots, report) are rebuilt from the cells every run.
 """
 import json
@@ -60,7 +61,7 @@ ONE_THREAD = {name: "1" for name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", 
 @reads_store
 def study(store, out, budgets=DEFAULT_BUDGETS, strategies=None, repeats=DEFAULT_REPEATS,
           answers=None, tolerance=DEFAULT_TOLERANCE, targets="test", l2=None, standardize=False,
-          memory_budget=DEFAULT_BUDGET, threads=None):
+          memory_budget=DEFAULT_BUDGET, threads=None, client=None):
     """Run (or resume) the study and write its outputs under ``out``.
 
     Parameters
@@ -79,6 +80,9 @@ def study(store, out, budgets=DEFAULT_BUDGETS, strategies=None, repeats=DEFAULT_
         None to choose it per cell by accuracy on the ``valid`` split over
         :data:`~bigprune.learning.proxy.L2_GRID` (the default; ``DEFAULT_L2`` without valid nodes).
     standardize : standardise the features on each cell's training nodes first (default off).
+    client : a ``distributed.Client``, or None. With a client each cell not yet done runs as a
+        task on the cluster, ``memory_budget`` is per worker process, and the store and ``out``
+        must be on a file system every worker sees at the same path (checked first).
 
     Returns
     -------
@@ -101,8 +105,13 @@ def study(store, out, budgets=DEFAULT_BUDGETS, strategies=None, repeats=DEFAULT_
         raise InputError(f"--targets {targets}: unknown; use one of {', '.join(TARGETS)}")
     memory = parse_size(memory_budget)
     threads = set_threads(threads)
+    if client is not None:
+        from ..cluster.connect import check_store
+
+        check_store(client, store.path)
+        check_store(client, out, option="--out")
     setup = _setup(store, answers, given, rules, repeats, targets, l2, bool(standardize))
-    summary = _study(setup, out, tolerance, memory, threads)
+    summary = _study(setup, out, tolerance, memory, threads, client)
     summary["seconds"] = round(time.perf_counter() - started, 3)
     return summary
 
@@ -268,7 +277,7 @@ def _cell_name(cell):
 
 
 # ---- running the cells ---------------------------------------------------------------------
-def _study(setup, out, tolerance, memory, threads):
+def _study(setup, out, tolerance, memory, threads, client=None):
     from .studyreport import write_outputs
 
     folder = out / "cells"
@@ -277,25 +286,33 @@ def _study(setup, out, tolerance, memory, threads):
     sweep_temps(folder)
     done = {c["name"]: _read_cell(folder / f"{c['name']}.json", c["key"]) for c in setup["cells"]}
     todo = [c for c in setup["cells"] if done[c["name"]] is None]
-    workers, per_worker = _plan_workers(setup, len(todo), memory, threads)
+    need = _worker_need(setup, memory)
     context = {"store": str(setup["store"].path), "embedding": setup["embedding"],
                "pool": setup["pool"], "eval_rows": setup["eval_rows"],
                "eval_truth": setup["eval_truth"], "width": setup["width"], "targets": setup["targets"], "l2": setup["l2"],
                "standardize": setup["standardize"], "tune_rows": setup["tune_rows"],
-               "tune_truth": setup["tune_truth"],
-               "memory": per_worker, "threads": 1 if workers > 1 else threads}
+               "tune_truth": setup["tune_truth"]}
     context["manifest"] = setup["store"].manifest()  # this process's pin: every cell reads one commit
-    with progress(total=len(todo), desc="study", unit="cell") as bar:
-        for cell, result in _run_all(todo, context, workers):
-            record = {"key": cell["key"], "cell": {k: cell[k] for k in ("rule", "budget", "k", "repeat", "seed")},
-                      "result": result}
-            _write_json(folder / f"{cell['name']}.json", record)
-            done[cell["name"]] = record
-            bar.update(1)
+    if client is None:
+        workers, per_worker = _split_budget(memory, need, threads, len(todo))
+        context.update(memory=per_worker, threads=1 if workers > 1 else threads)
+        with progress(total=len(todo), desc="study", unit="cell") as bar:
+            for cell, result in _run_all(todo, context, workers):
+                record = _record(cell, result)
+                _write_json(folder / f"{cell['name']}.json", record)
+                done[cell["name"]] = record
+                bar.update(1)
+        ran = {"workers": workers, "memory_per_worker": per_worker}
+    else:
+        from .studytasks import run_cells
+
+        context.update(memory=memory, need=need)
+        records = run_cells(client, todo, context, folder)
+        done.update((cell["name"], record) for cell, record in zip(todo, records))
+        ran = {"workers": len(client.ncores()), "memory_per_worker": memory, "cluster": True}
     rows = _table_rows(setup, done)
     summary = {"recommendation": recommend(rows, tolerance), "fits": fit_rules(rows),
-               "cells": {"run": len(todo), "skipped": len(setup["cells"]) - len(todo),
-                         "workers": workers, "memory_per_worker": per_worker},
+               "cells": {"run": len(todo), "skipped": len(setup["cells"]) - len(todo), **ran},
                "settings": {"rules": setup["rules"], "budgets": setup["budgets"],
                             "repeats": setup["repeats"], "targets": setup["targets"],
                             "l2": setup["l2"], "l2_policy": setup["l2_policy"],
@@ -307,8 +324,9 @@ def _study(setup, out, tolerance, memory, threads):
     return summary
 
 
-def _plan_workers(setup, cells, memory, threads):
-    """Worker count and each worker's byte budget: as many as the threads and the budget allow.
+def _worker_need(setup, memory):
+    """The bytes one worker (a process running one cell at a time) needs; BudgetError above
+    ``memory``.
 
     One worker's need is counted for the hungriest rule (the select stage's own check, made in
     the worker, has the exact figure): target rows twice, pool rows twice (rows plus an index
@@ -330,7 +348,12 @@ def _plan_workers(setup, cells, memory, threads):
     if memory < per_worker:
         raise BudgetError(f"--memory-budget {format_size(memory)} is too small for study: one "
                           f"worker needs about {format_size(per_worker)}")
-    workers = max(1, min(threads, cells, memory // per_worker))
+    return int(per_worker)
+
+
+def _split_budget(memory, need, threads, cells):
+    """Cells at once and each one's byte budget: as many as the threads and the budget allow."""
+    workers = max(1, min(threads, cells, memory // need))
     return int(workers), int(memory // workers)
 
 
@@ -380,23 +403,29 @@ def _init_spawned_worker(context):
 def _init_worker(context):
     """Per process: thread counts, and the evaluation and tuning rows read once."""
     set_threads(context["threads"])
+    _WORKER.clear()
+    _WORKER.update(_load_context(context))
+
+
+def _load_context(context):
+    """``context`` with the evaluation and tuning rows' features read (once per process)."""
     window = rows_per_chunk(max(1, context["memory"] - FIXED_OVERHEAD) // 8, 4 * context["width"],
                             at_least=1024)
-    _WORKER.clear()
-    _WORKER.update(context, window=window,
-                   eval_x=_gather(context["embedding"], context["eval_rows"], window))
+    loaded = dict(context, window=window, eval_x=_gather(context["embedding"], context["eval_rows"], window))
     same = np.array_equal(context["tune_rows"], context["eval_rows"])
-    _WORKER["tune_x"] = (_WORKER["eval_x"] if same
-                         else _gather(context["embedding"], context["tune_rows"], window))
+    loaded["tune_x"] = (loaded["eval_x"] if same
+                        else _gather(context["embedding"], context["tune_rows"], window))
+    return loaded
 
 
-def _run_cell(cell):
-    """Select, train the proxy on the subset, score it on the evaluation rows."""
+def _run_cell(cell, ctx=None):
+    """Select, train the proxy on the subset, score it on the evaluation rows (``ctx``: a loaded
+    context, by default this process's)."""
     from .proxy import fit_tuned, scores
     from ..selection.select import select
 
     started = time.perf_counter()
-    ctx = _WORKER
+    ctx = _WORKER if ctx is None else ctx
     store = Store(ctx["store"], manifest=ctx["manifest"])  # the study holds the store meanwhile
     result = {}
     if cell["rule"] == FULL:
@@ -449,6 +478,12 @@ def _gather(path, rows, window_rows):
 
 
 # ---- cells on disk ---------------------------------------------------------------------------
+def _record(cell, result):
+    """What ``cells/<cell>.json`` holds: the cell's key, its plan and its result."""
+    return {"key": cell["key"], "cell": {k: cell[k] for k in ("rule", "budget", "k", "repeat", "seed")},
+            "result": result}
+
+
 def _read_cell(path, expected):
     """The stored record when its key matches, else None (missing, unreadable or stale)."""
     try:

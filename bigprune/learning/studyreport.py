@@ -196,6 +196,14 @@ def _l2_text(settings, rows):
     return f"{policy} Chosen (rows of the table): {spread}."
 
 
+def _cluster_text(cells):
+    """Where the cells ran, when on a cluster."""
+    if not cells.get("cluster"):
+        return ""
+    workers = cells["workers"]
+    return f" Ran on a Dask cluster with {workers} worker{'s' if workers != 1 else ''}."
+
+
 def report_blocks(rows, summary, classes, images):
     """``[(kind, ...)]`` with kinds h1, h2, p, table (header, rows), img (name, png)."""
     rec, fits, settings = summary["recommendation"], summary["fits"], summary["settings"]
@@ -208,7 +216,7 @@ def report_blocks(rows, summary, classes, images):
                     f"nodes. Scored on {ev['nodes']:,} held-out nodes ({ev['source']}). "
                     f"Repeats: {settings['repeats']} (seed = repeat; rules that ignore the seed run "
                     f"once). Cells run this time: {summary['cells']['run']}, reused: "
-                    f"{summary['cells']['skipped']}.")]
+                    f"{summary['cells']['skipped']}.{_cluster_text(summary['cells'])}")]
     blocks.append(("h2", "Recommendation"))
     lines = [f"Full pool accuracy {rec['full_accuracy']:.4f}; a budget is enough when its mean "
              f"accuracy is at least {rec['full_accuracy'] - rec['tolerance']:.4f} "
