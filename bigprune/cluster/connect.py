@@ -60,8 +60,9 @@ def cluster(address, option="--cluster"):
             local.close()
 
 
-def check_store(client, root, option="--cluster"):
-    """Refuse a store that a worker cannot see at the same path, with the same contents.
+def check_store(client, root, option="--cluster", what="the store"):
+    """Refuse a store (or ``what`` else) that a worker cannot see at the same path, with the
+    same contents.
 
     The client writes a file with a random token into the store; every worker must read that
     token back from the same path. A worker on another machine whose disk merely has a folder of
@@ -83,8 +84,8 @@ def check_store(client, root, option="--cluster"):
         raise InputError(f"{option}: the cluster has no workers; start some with `dask worker ADDRESS`")
     for worker, (found, why) in sorted(seen.items()):
         if found != token:
-            raise InputError(f"{option}: worker {worker} cannot see the store {root} ({why}); put "
-                             "the store on a file system every worker mounts at the same path")
+            raise InputError(f"{option}: worker {worker} cannot see {what} {root} ({why}); put "
+                             f"it on a file system every worker mounts at the same path")
 
 
 def _read_probe(path):

@@ -109,7 +109,7 @@ def study(store, out, budgets=DEFAULT_BUDGETS, strategies=None, repeats=DEFAULT_
         from ..cluster.connect import check_store
 
         check_store(client, store.path)
-        check_store(client, out, option="--out")
+        check_store(client, out, option="--out", what="the study folder")
     setup = _setup(store, answers, given, rules, repeats, targets, l2, bool(standardize))
     summary = _study(setup, out, tolerance, memory, threads, client)
     summary["seconds"] = round(time.perf_counter() - started, 3)

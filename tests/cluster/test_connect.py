@@ -81,7 +81,7 @@ def test_a_store_the_workers_cannot_see_is_refused(blind_worker, small_store, ca
     before = tree_digest(store)
     assert main(["propagate", "--store", str(store), "--cluster", address, "--quiet"]) == 2
     assert one_line(capsys) == (f"bigprune propagate: error: --cluster: worker {worker} cannot see the store "
-                                f"{store} (No such file or directory); put the store on a file system "
+                                f"{store} (No such file or directory); put it on a file system "
                                 "every worker mounts at the same path\n")
     assert tree_digest(store) == before
 
