@@ -2,8 +2,9 @@
 
 Round 1: the targets are split into ``P`` parts by k-means (:mod:`bigprune.selection.parts`);
 one task per part runs the rule on a worker over that part's targets, with every pool node a
-candidate and the whole budget ``k`` (the include list first, the class quotas met), and returns
-its picks. Round 2, on the client: the same rule again, over every target, with the union of the
+candidate and the whole budget ``k`` (the include list first, the class quotas met; without
+either, at most one pick per target of the part: each target then has its nearest candidate,
+and more picks would only spread over the pool), and returns its picks. Round 2, on the client: the same rule again, over every target, with the union of the
 parts' picks as its candidates; so the selection has exactly ``k`` picks and keeps the include
 list and quotas as on one server (each part's picks meet the quotas, so the union can).
 
@@ -94,23 +95,26 @@ def _two_rounds(client, strategy, workers, memory, scratch, label_path, problem)
         np.save(scratch / f"part-{len(sizes)}.npy", problem.targets[part == p])
         sizes.append(int(np.sum(part == p)))
     del part
+    constrained = len(problem.initial) > 0 or bool(problem.quota)
+    picks = [problem.k if constrained else min(problem.k, size) for size in sizes]
     spec = {"scratch": str(scratch), "embedding": str(problem.embedding), "label": str(label_path),
-            "strategy": strategy, "k": int(problem.k), "initial": problem.initial,
-            "quota": dict(problem.quota), "seed": problem.seed, "memory": int(memory)}
-    found = run_tasks(client, part_picks, [(spec, p) for p in range(len(sizes))],
+            "strategy": strategy, "initial": problem.initial, "quota": dict(problem.quota),
+            "seed": problem.seed, "memory": int(memory)}
+    found = run_tasks(client, part_picks, [(spec, p, k) for p, k in enumerate(picks)],
                       desc=f"select {strategy} parts", unit="part")
-    union = np.unique(np.concatenate([problem.initial, *(picks for picks, _ in found)]))
+    union = np.unique(np.concatenate([problem.initial, *(chosen for chosen, _ in found)]))
     merge = dataclasses.replace(problem, pool=union)
     choice = STRATEGIES[strategy](merge)
-    facts = {"parts": len(sizes), "workers": workers, "picks_per_part": int(problem.k),
-             "part_targets": sizes, "merge_candidates": int(len(union)), "bound": BOUNDS[strategy]}
+    facts = {"parts": len(sizes), "workers": workers, "part_targets": sizes, "part_picks": picks,
+             "merge_candidates": int(len(union)), "bound": BOUNDS[strategy]}
     if strategy == "kcenter":
         facts["coreset_radius"] = max(radius for _, radius in found)
     return choice._replace(info={**(choice.info or {}), "distributed": facts})
 
 
-def part_picks(spec, part):
-    """On a worker: the rule over part ``part``'s targets with every pool node a candidate.
+def part_picks(spec, part, k):
+    """On a worker: ``k`` picks by the rule over part ``part``'s targets, every pool node a
+    candidate.
 
     Returns (picks int64, dense indices; the largest distance of a part target to them, or None
     when the rule does not measure it)."""
@@ -122,7 +126,7 @@ def part_picks(spec, part):
     scratch = Path(spec["scratch"])
     pool, targets = np.load(scratch / "pool.npy"), np.load(scratch / f"part-{part}.npy")
     label = np.load(spec["label"])
-    strategy, k = spec["strategy"], spec["k"]
+    strategy = spec["strategy"]
     width = np.load(spec["embedding"], mmap_mode="r").shape[1]
     chunk, window_rows, proxy_rows, rule_bytes = plan_rule(
         spec["memory"], strategy, len(pool), len(targets), k, width, len(np.unique(label[pool])))
