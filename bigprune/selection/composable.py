@@ -66,8 +66,8 @@ def cluster_rule(client, strategy, radius, memory, scratch, label_path):
     """The rule as select runs it through ``client``: a function Problem -> Choice whose info
     carries the report's ``"distributed"`` entry.
 
-    memory : bytes each worker may hold. scratch : a directory every worker sees (in the
-    store's staging area), for the parts' target lists. label_path : the graph's ``label.npy``.
+    memory : bytes each worker may hold. scratch : a directory in the store's staging area (the
+    one place every worker is known to see), for the pool's and the parts' target lists. label_path : the graph's ``label.npy``.
     """
     workers = len(client.nthreads())
 
@@ -84,6 +84,7 @@ def cluster_rule(client, strategy, radius, memory, scratch, label_path):
 
 
 def _two_rounds(client, strategy, workers, memory, scratch, label_path, problem):
+    """Round 1 as one task per part, round 2 here; the Choice of round 2."""
     from ..cluster.tasks import run_tasks
 
     targets, width = len(problem.targets), np.load(problem.embedding, mmap_mode="r").shape[1]
