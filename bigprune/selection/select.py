@@ -37,7 +37,7 @@ PROXY_ROW_COPIES = 4
 @reads_store
 def select(store, strategy, budget=None, targets="test", seed=0, out=None, memory_budget="4GiB",
            threads=None, embedding_hop=None, initial=None, include=None, exclude=None,
-           min_per_class=None, radius=None, cover=None, ensemble=None):
+           min_per_class=None, radius=None, cover=None, ensemble=None, client=None):
     """Choose ``budget`` training-pool nodes with ``strategy`` and report what they cover.
 
     Parameters
@@ -64,6 +64,10 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
         with ``radius`` only: the fewest greedy picks that bring that share within ``radius``.
     ensemble : even int >= 2 or None; ``ddd`` only: the proxies in its ensemble (default
         :data:`bigprune.selection.hardness.DDD_MEMBERS`).
+    client : ``distributed.Client`` or None. With one, ``kcenter`` and ``kmedian`` run as the
+        two-round composable scheme over the cluster (:mod:`bigprune.selection.composable`;
+        the picks may differ from one server's, within the bound it states); every other rule
+        runs here unchanged. The report's ``"distributed"`` says which, over how many parts.
 
     Returns
     -------
@@ -72,6 +76,10 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
     """
     started = time.perf_counter()
     store = store if isinstance(store, Store) else Store(store)
+    if client is not None:
+        from ..cluster.connect import check_store
+
+        check_store(client, store.path)
     if strategy not in STRATEGIES:
         raise InputError(f"--strategy {strategy}: unknown; use one of {', '.join(STRATEGIES)}")
     if targets not in TARGETS:
@@ -105,25 +113,29 @@ def select(store, strategy, budget=None, targets="test", seed=0, out=None, memor
                  else store.stage_dir("propagate") / f"hop_{hop}.npy")
     width = np.load(embedding, mmap_mode="r").shape[1]
     classes = len(np.unique(label[pool]))
-    need, chunk = _plan(memory, strategy, len(pool), len(chosen_targets), k, width, classes)
-    spare = memory - FIXED_OVERHEAD - need
-    window_rows = rows_per_chunk(spare // 4, 4 * width, at_least=1024)
-    proxy_rows = rows_per_chunk(spare // 4, PROXY_ROW_COPIES * 8 * (width + classes), at_least=1024)
+    chunk, window_rows, proxy_rows, rule_bytes = plan_rule(
+        memory, strategy, len(pool), len(chosen_targets), k, width, classes)
     scratch = None
-    if chunk is not None:
+    if chunk is not None or client is not None:  # the cluster's tasks read their parts there
         scratch = store.path / STAGING / f"select-{os.getpid()}-{uuid.uuid4().hex[:8]}"
         scratch.mkdir(parents=True)
+    if chunk is not None:
         chunk = (*chunk, scratch)
     given = None if radius is not None else {**read_budget(budget).describe(), "picks": int(k)}
     extra = {"budget": given, "target_split": targets, "embedding": f"hop_{hop}", "metric": "L2",
              "threads": threads, "constraints": constraints,
              "targets_in_memory": chunk is None}
     try:
-        rule_bytes = memory - FIXED_OVERHEAD - _common_bytes(strategy, len(pool), k, width, classes)
         problem = Problem(store, pool, chosen_targets, k, start, int(seed), embedding, window_rows,
                           label, quota, radius, proxy_rows, chunk, rule_bytes, cover=cover,
                           ensemble=ensemble)
-        return _select(problem, strategy, label, out, started, extra)
+        rule = STRATEGIES[strategy]
+        if client is not None:
+            from .composable import cluster_rule
+
+            rule = cluster_rule(client, strategy, radius, memory, scratch,
+                                store.stage_dir("graph") / "label.npy")
+        return _select(problem, strategy, label, out, started, extra, rule)
     finally:
         if scratch is not None:
             shutil.rmtree(scratch, ignore_errors=True)
@@ -376,6 +388,18 @@ def _excluded(known, path, whole_pool, names):
                   "outside_pool": int(len(np.unique(dense[~inside])))}
 
 
+def plan_rule(memory, strategy, pool, targets, k, width, classes):
+    """How a rule over ``pool`` candidates and ``targets`` targets fits ``memory`` bytes:
+    (None, or (chunk rows, group rows) to keep target rows on disk; rows per embedding window;
+    rows per proxy chunk; bytes the rule may hold). Refuses (exit 3) what cannot fit."""
+    need, chunk = _plan(memory, strategy, pool, targets, k, width, classes)
+    spare = memory - FIXED_OVERHEAD - need
+    window_rows = rows_per_chunk(spare // 4, 4 * width, at_least=1024)
+    proxy_rows = rows_per_chunk(spare // 4, PROXY_ROW_COPIES * 8 * (width + classes), at_least=1024)
+    rule_bytes = memory - FIXED_OVERHEAD - _common_bytes(strategy, pool, k, width, classes)
+    return chunk, window_rows, proxy_rows, rule_bytes
+
+
 def _plan(memory, strategy, pool, targets, k, width, classes):
     """Bytes the stage holds at its peak, and how targets are read: ``(need, None)`` when
     their rows fit in memory, else ``(need, (chunk rows, group rows))`` to keep them on disk.
@@ -424,9 +448,10 @@ def _on_disk_bytes(targets, k, width, group_rows):
     return 80 * targets + sample + 2 * k * (rows + 16) + group_rows * rows + 4 * PRODUCT_ITEMS
 
 
-def _select(problem, strategy, label, out, started, extra):
-    """Run ``strategy``, build the report, write the outputs; returns the report."""
-    choice = STRATEGIES[strategy](problem)
+def _select(problem, strategy, label, out, started, extra, rule):
+    """Run ``rule`` (``strategy``'s function, or it through the cluster), build the report,
+    write the outputs; returns the report."""
+    choice = rule(problem)
     order = choice.order
     info = dict(choice.info or {})
     ranking = info.pop("ranking", None)
