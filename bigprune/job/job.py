@@ -18,8 +18,12 @@ from ..common.store import Store
 from ..common.faults import fault
 
 
-def plan_job(job):
-    """The stages in order, each ``{"stage", "run": bool, "why": str, ...}``; reads only."""
+def plan_job(job, clustered=False):
+    """The stages in order, each ``{"stage", "run": bool, "why": str, ...}``; reads only.
+
+    clustered : whether the steps run through a cluster; a rule that select splits into parts
+    there (``composable.distributes``) is keyed apart from its one-server selection.
+    """
     store = Store(job["store"])
     manifest = store.manifest()
     stages = manifest["stages"]
@@ -59,6 +63,8 @@ def plan_job(job):
     outputs = manifest.get("outputs", {})
     for entry in job["select"]:
         params = {k: v for k, v in entry.items() if k != "out"}
+        if clustered and _distributes(entry):
+            params["distributed"] = True
         lists = fingerprints([entry[k] for k in ("include", "exclude") if entry[k]])
         stamp = key(params, _comparable({"lists": lists}), upstream) if upstream else None
         done = outputs.get(str(Path(entry["out"]).resolve()), {})
@@ -76,6 +82,12 @@ def plan_job(job):
     if job.get("study"):
         steps.append(_plan_study(job["study"], upstream, outputs))
     return steps
+
+
+def _distributes(entry):
+    from ..selection.composable import distributes
+
+    return distributes(entry["strategy"], entry["radius"])
 
 
 def _plan_study(entry, upstream, outputs):
@@ -114,8 +126,9 @@ def run_job(path, dry_run=False, echo=print, cluster=None, client=None):
 
         parse_address(cluster)
     store = Store(job["store"])
+    clustered = bool(cluster or client or job["cluster"])
     if dry_run:
-        steps = plan_job(job)
+        steps = plan_job(job, clustered)
         for step in steps:
             echo(f"{'run ' if step['run'] else 'skip'}  {step['stage']:<40} {step['why']}")
         return steps
@@ -126,7 +139,7 @@ def run_job(path, dry_run=False, echo=print, cluster=None, client=None):
     began = time.time()
     log = Path(job["log"]) if job["log"] else Path(job["store"]).parent / "bigprune-log.jsonl"
     with store.locked(), ExitStack() as stack:
-        steps = plan_job(job)
+        steps = plan_job(job, clustered)
         address = cluster or job["cluster"]
         checked = False
         for step in steps:
