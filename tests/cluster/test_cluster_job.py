@@ -49,7 +49,7 @@ def test_rules_run_on_the_client_give_the_same_picks(runs):
         if path.stem not in DISTRIBUTED:
             assert file_digests(path.parent, [path.name]) == file_digests(cluster / "selections", [path.name])
             report = json.loads((cluster / "selections" / f"{path.stem}.json").read_text())
-            assert report["distributed"]["parts"] == 1, report["distributed"]
+            assert report["distributed"] is False and report["on_client"]["parts"] == 1, report
 
 
 @pytest.mark.parametrize("strategy, objective", [("kcenter", "radius"), ("kmedian", "mean")])
