@@ -74,17 +74,22 @@ def plan_workers(budget, nodes, edge_rows, hash_bytes, index_dtype, weighted):
                       max(16 * MIB, (spare - client) // 4))
 
 
-def build_on_cluster(client, edges, nodes, index_dtype, writer, plan, budget, drop_unknown, id_table=None):
+def build_on_cluster(client, edges, table, index_dtype, writer, plan, budget, drop_unknown):
     """Map, spill, merge and place the edges as tasks; write indptr/indices(/weight) into the
-    stage. ``id_table`` is the client's :class:`idrows.IdTable` on the integer-id path (None:
-    DuckDB maps the ids). Returns the manifest's counts, plus the cluster's figures."""
+    stage, whose ``node_id.parquet`` is written. ``table`` is the loaded :class:`NodeTable`:
+    its id hash table (integer ids; else DuckDB maps the ids) is saved for the workers and
+    dropped here with the ids. Returns the manifest's counts, plus the cluster's figures."""
+    import pyarrow as pa
+
     scratch = writer.scratch()
+    nodes = table.rows
     workers = max(1, len(client.scheduler_info()["workers"]))
     ids = IdMap(str(writer.path / "node_id.parquet"), None, plan.duckdb_bytes)
-    if id_table is not None:
-        np.save(scratch / "id-slots.npy", id_table.table)
+    if table.id_table is not None:
+        np.save(scratch / "id-slots.npy", table.id_table.table)
         ids = ids._replace(hash_slots=str(scratch / "id-slots.npy"))
-    del id_table
+    table.id_table = table.ids = None
+    pa.default_memory_pool().release_unused()  # Arrow's pool keeps the node table's batches
     groups = _partition_groups(edges.file_rows, workers)
     grid = _grid(nodes, edges.rows, plan.block_bytes, workers)
     spills = [str(scratch / f"spill-{t}.bin") for t in range(len(groups))]

@@ -112,10 +112,7 @@ def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, thr
         else:
             from .clusterbuild import build_on_cluster
 
-            id_table, table.id_table, table.ids = table.id_table, None, None
-            pa.default_memory_pool().release_unused()  # Arrow's pool keeps the node table's batches
-            counts = build_on_cluster(client, partitions, n, index_dtype, writer, plan, budget, drop_unknown,
-                                      id_table)
+            counts = build_on_cluster(client, partitions, table, index_dtype, writer, plan, budget, drop_unknown)
         summary = {"nodes": n, "feature_dim": dim, "weighted": bool(partitions.weighted),
                    "edge_files": len(partitions.files), **counts,
                    "memory_budget": format_size(budget)}
@@ -163,9 +160,11 @@ def _check_store(client, store):
     from ..cluster.connect import check_store
 
     fresh = not store.path.exists()
-    check_store(client, store.path)
-    if fresh:
-        store.path.rmdir()
+    try:
+        check_store(client, store.path)
+    finally:
+        if fresh:
+            store.path.rmdir()
 
 
 def _renamed(columns):

@@ -116,6 +116,7 @@ def spill_partitions(edges, first, stop, ids, grid, spill, run_rows, index_dtype
             con = duckdb_connection(spill_dir, ids.duckdb_bytes, threads)
             register_ids(con, _cached(ids.node_ids, _node_ids), index_dtype)
             batches = duckdb_rows(con, mine, index_dtype, BATCH_ROWS, drop_unknown, looked_at)
+        run_rows = max(1, min(run_rows, sum(edges.file_rows[first:stop])))
         return _spill(batches, grid.bounds(), run_rows, index_dtype, edges.weighted, spill)
     # DuckDB errors met mid-stream arrive as Arrow's OSError; pyarrow's own reads raise ArrowException
     except (duckdb.Error, OSError, pa.ArrowException) as exc:
