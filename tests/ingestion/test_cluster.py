@@ -107,6 +107,10 @@ def test_an_unknown_id_is_the_same_line_and_keeps_the_store(demo, dask_client, t
     assert str(there.value) == str(here.value)
     assert f"{parts[1]}: row 40 column 'src' names node {unknown!r}" in str(there.value)
     assert "\n" not in str(there.value) and tree_digest(store) == before
+    # the task of the last partition alone, whichever ran first above, names the same row
+    with pytest.raises(InputError) as last:
+        _spill_alone(tmp_path, store, id_type, first=3)
+    assert str(last.value) == str(here.value)
     with pytest.raises(InputError):
         ingest(*_sources(tmp_path / "data"), tmp_path / "fresh-too", client=dask_client)
     assert not (tmp_path / "fresh-too").exists()
@@ -115,6 +119,26 @@ def test_an_unknown_id_is_the_same_line_and_keeps_the_store(demo, dask_client, t
     two = ingest(*_sources(tmp_path / "data"), tmp_path / "two", client=dask_client, drop_unknown=True)
     assert _stage_sha(tmp_path / "two") == _stage_sha(tmp_path / "one")
     assert {k: two[k] for k in COUNTS} == {k: one[k] for k in COUNTS} and two["unknown_dropped"] == 2
+
+
+def _spill_alone(tmp_path, store, id_type, first):
+    """The phase-1 task of partition ``first`` run in this process, against ``store``'s ids."""
+    import numpy as np
+
+    from bigprune.common.sources import edge_files
+    from bigprune.ingestion.edges import EdgeFiles
+    from bigprune.ingestion.idrows import IdTable
+    from bigprune.ingestion.tasks import Grid, IdMap, spill_partitions
+
+    edges = EdgeFiles(edge_files(tmp_path / "data" / "edges"), "int" if id_type == "int64" else "string")
+    node_ids = Store(store).stage_dir("graph") / "node_id.parquet"
+    slots = None
+    if id_type == "int64":
+        slots = tmp_path / "slots.npy"
+        np.save(slots, IdTable(pq.read_table(node_ids).column("node_id").to_numpy()).table)
+    ids = IdMap(str(node_ids), None if slots is None else str(slots), 256 << 20)
+    spill_partitions(edges, first, first + 1, ids, Grid(2000, 1), str(tmp_path / "spill.bin"), 1000, "<i4",
+                     False, 4 << 30)
 
 
 def test_a_bad_weight_is_the_same_line(demo, dask_client, tmp_path):
