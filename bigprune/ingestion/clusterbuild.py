@@ -24,7 +24,7 @@ from .tasks import Grid, IdMap, block_paths, cuts_path, forget_ids, merge_block,
 # What a merge task holds per row of its block: counts/pointers, their cursor copy, kept counts
 # and the compacted pointers (int64 each).
 ROW_BYTES = 40
-# A phase-1 task's share of the mapped rows it buffers: the row, then both its directions.
+# Copies of each mapped row a phase-1 task buffers: the row, and its two directions.
 RUN_COPIES = 3
 # Mapped edge rows a phase-1 task aims at (several partitions share a task below it), and the
 # least a row block holds (each merge task reads a slice of every run of every spill file).
@@ -82,7 +82,6 @@ def build_on_cluster(client, edges, table, index_dtype, writer, plan, budget, dr
     import pyarrow as pa
 
     scratch = writer.scratch()
-    nodes = table.rows
     workers = max(1, len(client.scheduler_info()["workers"]))
     ids = IdMap(str(writer.path / "node_id.parquet"), None, plan.duckdb_bytes)
     if table.id_table is not None:
@@ -90,52 +89,70 @@ def build_on_cluster(client, edges, table, index_dtype, writer, plan, budget, dr
         ids = ids._replace(hash_slots=str(scratch / "id-slots.npy"))
     table.id_table = table.ids = None
     pa.default_memory_pool().release_unused()  # Arrow's pool keeps the node table's batches
+    index_dtype = np.dtype(index_dtype).str
     groups = _partition_groups(edges.file_rows, workers)
-    grid = _grid(nodes, edges.rows, plan.block_bytes, workers)
+    grid = _grid(table.rows, edges.rows, plan.block_bytes, workers)
     spills = [str(scratch / f"spill-{t}.bin") for t in range(len(groups))]
     try:
         phase1 = run_tasks(client, spill_partitions,
-                           [(edges, first, stop, ids, grid, spill, plan.run_rows, np.dtype(index_dtype).str,
-                             drop_unknown, budget) for (first, stop), spill in zip(groups, spills)],
-                           "ingest partitions", "task")
+                           [(edges, first, stop, ids, grid, spill, plan.run_rows, index_dtype, drop_unknown, budget)
+                            for (first, stop), spill in zip(groups, spills)], "ingest partitions", "task")
     finally:
         client.run(forget_ids)
     filled, loops, dropped = (sum(result[i] for result in phase1) for i in range(3))
     require_edges(edges, filled, loops)
 
-    range_entries = np.zeros(grid.ranges, dtype=np.int64)
-    for spill in spills:
-        range_entries += np.diff(np.load(cuts_path(spill)), axis=1).sum(axis=0)
-    bounds = grid.bounds()
-    costs = range_entries * ENTRY_BYTES + np.diff(bounds) * ROW_BYTES
-    blocks = block_bounds(costs, _block_limit(plan.block_bytes, int(costs.sum()), workers))
-    pieces = [(spills, int(a), int(b), int(bounds[a]), int(bounds[b]), int(range_entries[a:b].sum()),
-               np.dtype(index_dtype).str, edges.weighted, block_paths(scratch, k))
-              for k, (a, b) in enumerate(zip(blocks[:-1], blocks[1:]))]
-    uniques = run_tasks(client, merge_block, pieces, "ingest blocks", "block")
+    blocks = _row_blocks(spills, grid, plan.block_bytes, workers)
+    uniques = run_tasks(client, merge_block,
+                        [(spills, block.first_range, block.stop_range, block.lo, block.hi, block.entries,
+                          index_dtype, edges.weighted, block_paths(scratch, k)) for k, block in enumerate(blocks)],
+                        "ingest blocks", "block")
     for spill in spills:
         _unlink(spill, cuts_path(spill))
 
-    offsets = np.zeros(len(uniques) + 1, dtype=np.int64)
+    offsets = np.zeros(len(blocks) + 1, dtype=np.int64)
     np.cumsum(uniques, out=offsets[1:])
     total = int(offsets[-1])
-    for name, shape, dtype in [("indptr", nodes + 1, np.int64), ("indices", total, index_dtype)] + (
+    for name, size, dtype in [("indptr", table.rows + 1, np.int64), ("indices", total, index_dtype)] + (
             [("weight", total, np.float32)] if edges.weighted else []):
-        created = writer.array(name, (shape,), dtype)  # the file with its header; pages untouched
+        created = writer.array(name, (size,), dtype)  # the file with its header; pages untouched
         del created
     run_tasks(client, place_block,
-              [(str(writer.path), piece[-1], piece[3], int(offsets[k]), uniques[k], edges.weighted)
-               for k, piece in enumerate(pieces)], "ingest placing", "block")
-    for piece in pieces:
-        _unlink(*piece[-1])
-    counts = edge_counts(filled, dropped, loops, total, len(pieces))
+              [(str(writer.path), block_paths(scratch, k), block.lo, int(offsets[k]), uniques[k], edges.weighted)
+               for k, block in enumerate(blocks)], "ingest placing", "block")
+    for k in range(len(blocks)):
+        _unlink(*block_paths(scratch, k))
+    counts = edge_counts(filled, dropped, loops, total, len(blocks))
     counts["cluster"] = {"workers": workers, "partition_tasks": len(groups), "row_ranges": grid.ranges}
     return counts
 
 
+class RowBlock(NamedTuple):
+    """A merge task's rows ``lo..hi``: ranges ``first_range..stop_range``, ``entries`` in all."""
+
+    first_range: int
+    stop_range: int
+    lo: int
+    hi: int
+    entries: int
+
+
+def _row_blocks(spills, grid, block_bytes, workers):
+    """The grid's ranges grouped into row blocks that fit ``_block_limit`` (a range above it
+    gets a block of its own), from the entries each spill file holds per range."""
+    entries = np.zeros(grid.ranges, dtype=np.int64)
+    for spill in spills:
+        entries += np.diff(np.load(cuts_path(spill)), axis=1).sum(axis=0)
+    bounds = grid.bounds()
+    costs = entries * ENTRY_BYTES + np.diff(bounds) * ROW_BYTES
+    ranges = block_bounds(costs, _block_limit(block_bytes, int(costs.sum()), workers))
+    return [RowBlock(int(a), int(b), int(bounds[a]), int(bounds[b]), int(entries[a:b].sum()))
+            for a, b in zip(ranges[:-1], ranges[1:])]
+
+
 def _partition_groups(file_rows, workers):
-    """Consecutive partitions grouped into tasks of about ``TASK_ROWS`` rows, fewer when that
-    leaves fewer than two tasks per worker (a partition is never split)."""
+    """Consecutive partitions grouped into tasks of about ``TASK_ROWS`` rows, or fewer rows when
+    that would leave fewer than two tasks per worker (a partition is never split)."""
     target = max(1, min(TASK_ROWS, math.ceil(sum(file_rows) / (2 * workers))))
     groups, first, held = [], 0, 0
     for i, rows in enumerate(file_rows):
