@@ -1,4 +1,5 @@
 """Streaming the edge partitions: DuckDB id mapping, checks, and the CSR build."""
+import copy
 import errno
 import os
 
@@ -9,7 +10,7 @@ import pyarrow.compute  # noqa: F401  (pa.compute)
 from ..common.errors import BudgetError, InputError
 from .csrbuild import EdgeRows, build_in_blocks, build_in_memory, count_dtype, in_memory_bytes_per_row
 from ..kernels.csr import count_endpoints
-from ..common.memory import format_size
+from ..common.memory import MIB, format_size
 from ..common.runtime import progress
 from ..common.sources import first_damaged, id_kind, is_numeric, open_parquet
 
@@ -21,6 +22,7 @@ class EdgeFiles:
         self.files = files
         self.src, self.dst = src, dst
         self.rows = 0
+        self.file_rows = []
         self.weighted = None
         for path in files:
             meta = open_parquet(path, "--edges")
@@ -45,7 +47,15 @@ class EdgeFiles:
                                  f"unlike {files[0]}; every partition needs the same columns")
             if meta.metadata.num_rows == 0:
                 raise InputError(f"--edges {path}: the partition holds no rows; remove it or fill it")
+            self.file_rows.append(meta.metadata.num_rows)
             self.rows += meta.metadata.num_rows
+
+    def subset(self, files):
+        """The same checked partitions restricted to ``files``; ``rows`` stays the whole input's
+        count, which messages quote."""
+        part = copy.copy(self)
+        part.files = list(files)
+        return part
 
     def endpoints_sql(self):
         """The two endpoint columns of the scan aliased ``e``, quoted for DuckDB."""
@@ -56,13 +66,15 @@ class EdgeFiles:
         return f"read_parquet([{names}], filename = true, file_row_number = true)"
 
 
-def duckdb_rows(con, edges, index_dtype, batch_rows, drop_unknown=False):
+def duckdb_rows(con, edges, index_dtype, batch_rows, drop_unknown=False, explained=None):
     """Yield ``(u, v, w, dropped)`` per batch of the partitions, ids mapped by DuckDB.
 
     ``con`` is a DuckDB connection holding the id map as table ``idmap(id, idx)``. Edge rows
     naming a node missing from the node table are an error, or dropped and counted (``dropped``)
-    with ``drop_unknown``; a weight that is not finite and > 0 is an error.
+    with ``drop_unknown``; a weight that is not finite and > 0 is an error, located in the
+    partitions ``explained`` (default ``edges``).
     """
+    explained = edges if explained is None else explained
     weight_sql = "e.weight::FLOAT AS w" if edges.weighted else "NULL::FLOAT AS w"
     src, dst = edges.endpoints_sql()
     query = (f"SELECT s.idx AS u, d.idx AS v, {weight_sql} FROM {edges.sql_source()} AS e "
@@ -74,7 +86,7 @@ def duckdb_rows(con, edges, index_dtype, batch_rows, drop_unknown=False):
         if batch.column(0).null_count or batch.column(1).null_count:
             if not drop_unknown:
                 reader.close()
-                explain_unmapped(con, edges)
+                explain_unmapped(con, explained)
             known = pa.compute.and_(batch.column(0).is_valid(), batch.column(1).is_valid())
             dropped = len(batch) - pa.compute.sum(known).as_py()
             batch = batch.filter(known)
@@ -85,7 +97,7 @@ def duckdb_rows(con, edges, index_dtype, batch_rows, drop_unknown=False):
             w = batch.column(2).to_numpy(zero_copy_only=False)
             if not np.all((w > 0) & (w < np.inf)):  # also false for NaN and null
                 reader.close()
-                explain_weight(edges)
+                explain_weight(explained)
         yield u, v, w, dropped
 
 
@@ -110,16 +122,26 @@ def build_csr(batches, edges, node_count, index_dtype, writer, edge_bytes):
             dropped += batch_dropped
             bar.update(len(u))
     filled = rows.count
-    if filled == loops:
-        raise InputError(f"--edges: none of the {edges.rows} edge rows joins two different known nodes; "
-                         "the graph has no edges")
+    require_edges(edges, filled, loops)
     if in_memory:
         unique, blocks = build_in_memory(rows, counts, writer), 1
     else:
         with progress(total=None, desc="ingest blocks", unit="block") as bar:
             unique, blocks = build_in_blocks(rows, counts, writer, edge_bytes, scratch, bar)
+    return edge_counts(filled, dropped, loops, unique, blocks)
+
+
+def require_edges(edges, filled, loops):
+    """Refuse a graph without edges: every kept row (``filled``) was a self loop."""
+    if filled == loops:
+        raise InputError(f"--edges: none of the {edges.rows} edge rows joins two different known nodes; "
+                         "the graph has no edges")
+
+
+def edge_counts(filled, dropped, loops, unique, blocks):
+    """The manifest's counts from the rows kept and dropped, the loops and the CSR's entries."""
     return {"edge_rows": int(filled + dropped), "unknown_dropped": int(dropped), "self_loops_dropped": int(loops),
-            "undirected_edges": unique // 2, "repeats_merged": int(filled - loops - unique // 2),
+            "undirected_edges": int(unique) // 2, "repeats_merged": int(filled - loops - int(unique) // 2),
             "row_blocks": int(blocks)}
 
 
@@ -183,6 +205,19 @@ def scan_error(exc, edges, budget):
                            f"{edges.rows:,} edge rows; raise the budget")
     columns = [edges.src, edges.dst] + (["weight"] if edges.weighted else [])
     return first_damaged(edges.files, columns, "--edges") or exc
+
+
+def duckdb_connection(spill_dir, memory_bytes, threads):
+    """A DuckDB connection within ``memory_bytes``, spilling into ``spill_dir``."""
+    import duckdb
+
+    con = duckdb.connect()
+    con.execute(f"SET memory_limit = '{memory_bytes // MIB}MB'")
+    con.execute(f"SET temp_directory = '{str(spill_dir)}'")
+    con.execute(f"SET threads = {int(threads)}")
+    con.execute("SET preserve_insertion_order = false")
+    con.execute("SET enable_progress_bar = false")
+    return con
 
 
 def register_ids(con, ids, index_dtype):

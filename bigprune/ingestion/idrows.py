@@ -55,6 +55,13 @@ class IdTable:
         row = build_table(ids, self.table)
         self.repeated = None if row < 0 else int(ids[row])
 
+    @classmethod
+    def from_table(cls, table):
+        """The id table around slots built before (``self.table`` of another IdTable)."""
+        ids = cls.__new__(cls)
+        ids.table, ids.repeated = table, None
+        return ids
+
     def rows(self, column):
         """Dense rows of an Arrow integer column, -1 for ids not in the table and for nulls."""
         ids = column if not column.null_count else pc.fill_null(column, 0)

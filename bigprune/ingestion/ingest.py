@@ -8,7 +8,8 @@ import pyarrow as pa
 from ..common.arrayfile import NpyFile
 from .csrbuild import count_dtype
 from ..common.errors import BudgetError
-from .edges import EdgeFiles, build_csr, duckdb_rows, explain_unmapped, explain_weight, register_ids, scan_error
+from .edges import (EdgeFiles, build_csr, duckdb_connection, duckdb_rows, explain_unmapped, explain_weight,
+                    register_ids, scan_error)
 from ..common.fingerprint import fingerprints
 from .idrows import hashable, hashed_rows, table_bytes
 from ..common.memory import DEFAULT_BUDGET, FIXED_OVERHEAD, MIB, format_size, parse_size, peak_rss, working_memory
@@ -21,7 +22,7 @@ from ..common.store import Store
 
 
 def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, threads=None,
-           drop_unknown=False, columns=Columns()):
+           drop_unknown=False, columns=Columns(), client=None):
     """Build the graph stage of ``store`` from Parquet edges and a node table.
 
     Parameters
@@ -46,6 +47,11 @@ def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, thr
         The input columns playing ``src``, ``dst``, ``node_id``, ``label`` and ``features``
         (:func:`bigprune.ingestion.columns.columns`). String labels become class ids in sorted
         name order; the names go to the graph stage's ``classes.parquet``.
+    client : distributed.Client, optional
+        Map the edge partitions and build the CSR as tasks on this Dask cluster
+        (``clusterbuild``), within ``memory_budget`` per worker process; the stage's files are
+        byte for byte those of one server. The store must be on a file system every worker
+        sees at the same path.
 
     Returns
     -------
@@ -58,12 +64,12 @@ def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, thr
     times (in either direction) becomes one edge keeping its largest weight, so repeating an
     edge never changes the graph.
     """
-    import duckdb
-
     started = time.time()
     budget = parse_size(memory_budget)
     threads = set_threads(threads)
     store = store if isinstance(store, Store) else Store(store)
+    if client is not None:
+        _check_store(client, store)
     regular_file(nodes, "--nodes")
     if features is not None:
         regular_file(features, "--features")
@@ -73,7 +79,13 @@ def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, thr
     index_dtype = np.int32 if n < 2**31 - 1 else np.int64
     hashed = hashable(table.file.schema_arrow.field(columns.node_id).type, partitions.files, index_dtype,
                       columns.src, columns.dst)
-    plan = _plan(budget, n, partitions.rows, table_bytes(n) if hashed else 0)
+    if client is None:
+        plan = _plan(budget, n, partitions.rows, table_bytes(n) if hashed else 0)
+    else:
+        from .clusterbuild import plan_workers
+
+        plan = plan_workers(budget, n, partitions.rows, table_bytes(n) if hashed else 0, index_dtype,
+                            partitions.weighted)
     table.load(hash_ids=hashed)
     inputs = {"edges": fingerprints(partitions.files), "nodes": fingerprints([nodes])}
     if features is not None:
@@ -95,37 +107,64 @@ def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, thr
         else:
             dim = copy_npy_features(features, n, lambda d: _row_writer(writer, "features", n, d),
                                     plan.chunk_bytes)
-        con = None
-        if plan.duckdb_bytes:
-            con = _duckdb(writer.scratch(), plan.duckdb_bytes, threads)
-            register_ids(con, table.id_array(), index_dtype)
-            batches = duckdb_rows(con, partitions, index_dtype, BATCH_ROWS, drop_unknown)
+        if client is None:
+            counts = _build_here(partitions, table, writer, plan, index_dtype, threads, budget, drop_unknown)
         else:
-            def unmapped():  # DuckDB only to locate the first bad row for the message
-                con = _duckdb(writer.scratch(), DUCKDB_MIN, threads)
-                register_ids(con, table.read_ids(), index_dtype)
-                explain_unmapped(con, partitions)
+            from .clusterbuild import build_on_cluster
 
-            # The generator holds the only reference to the id map, so it is freed when the scan
-            # ends and the CSR build has its memory.
-            id_table, table.id_table, table.ids = table.id_table, None, None
-            batches = hashed_rows(partitions, id_table, BATCH_ROWS, drop_unknown, unmapped,
-                                  lambda: explain_weight(partitions))
-            del id_table
-        pa.default_memory_pool().release_unused()  # Arrow's pool keeps the node table's batches
-        try:
-            counts = build_csr(batches, partitions, n, index_dtype, writer, edge_bytes=plan.edge_bytes)
-        # DuckDB errors met mid-stream arrive as Arrow's OSError; pyarrow's own reads raise ArrowException
-        except (duckdb.Error, OSError, pa.ArrowException) as exc:
-            raise scan_error(exc, partitions, budget) from None
-        if con is not None:
-            con.close()
+            counts = build_on_cluster(client, partitions, table, index_dtype, writer, plan, budget, drop_unknown)
         summary = {"nodes": n, "feature_dim": dim, "weighted": bool(partitions.weighted),
                    "edge_files": len(partitions.files), **counts,
                    "memory_budget": format_size(budget)}
         writer.info.update(summary)
     summary.update(seconds=round(time.time() - started, 3), peak_rss=peak_rss())
     return summary
+
+
+def _build_here(partitions, table, writer, plan, index_dtype, threads, budget, drop_unknown):
+    """Map, check and build the CSR on this server (``build_csr``); returns its counts."""
+    import duckdb
+
+    n = table.rows
+    con = None
+    if plan.duckdb_bytes:
+        con = duckdb_connection(writer.scratch(), plan.duckdb_bytes, threads)
+        register_ids(con, table.id_array(), index_dtype)
+        batches = duckdb_rows(con, partitions, index_dtype, BATCH_ROWS, drop_unknown)
+    else:
+        def unmapped():  # DuckDB only to locate the first bad row for the message
+            con = duckdb_connection(writer.scratch(), DUCKDB_MIN, threads)
+            register_ids(con, table.read_ids(), index_dtype)
+            explain_unmapped(con, partitions)
+
+        # The generator holds the only reference to the id map, so it is freed when the scan
+        # ends and the CSR build has its memory.
+        id_table, table.id_table, table.ids = table.id_table, None, None
+        batches = hashed_rows(partitions, id_table, BATCH_ROWS, drop_unknown, unmapped,
+                              lambda: explain_weight(partitions))
+        del id_table
+    pa.default_memory_pool().release_unused()  # Arrow's pool keeps the node table's batches
+    try:
+        counts = build_csr(batches, partitions, n, index_dtype, writer, edge_bytes=plan.edge_bytes)
+    # DuckDB errors met mid-stream arrive as Arrow's OSError; pyarrow's own reads raise ArrowException
+    except (duckdb.Error, OSError, pa.ArrowException) as exc:
+        raise scan_error(exc, partitions, budget) from None
+    if con is not None:
+        con.close()
+    return counts
+
+
+def _check_store(client, store):
+    """Refuse a store a worker cannot see; a store folder made only for the probe goes again, so
+    that a refused ingest leaves no store behind."""
+    from ..cluster.connect import check_store
+
+    fresh = not store.path.exists()
+    try:
+        check_store(client, store.path)
+    finally:
+        if fresh:
+            store.path.rmdir()
 
 
 def _renamed(columns):
@@ -222,15 +261,3 @@ class _row_writer:
     def __exit__(self, *exc):
         self.file.close()
         return False
-
-
-def _duckdb(spill_dir, memory_bytes, threads):
-    import duckdb
-
-    con = duckdb.connect()
-    con.execute(f"SET memory_limit = '{memory_bytes // MIB}MB'")
-    con.execute(f"SET temp_directory = '{str(spill_dir)}'")
-    con.execute(f"SET threads = {int(threads)}")
-    con.execute("SET preserve_insertion_order = false")
-    con.execute("SET enable_progress_bar = false")
-    return con

@@ -116,6 +116,17 @@ def scatter_directed(rows, cols, w, first_row, cursor, indices, weights):
 
 
 @njit(cache=True)
+def count_rows(rows, first_row, counts):
+    """Count the directed entries of each row of one row block.
+
+    rows : int (e,), read; rows lie in ``first_row .. first_row + len(counts)``.
+    counts : int64 (block rows,), filled (incremented).
+    """
+    for i in range(rows.shape[0]):
+        counts[rows[i] - first_row] += 1
+
+
+@njit(cache=True)
 def block_bounds(counts, limit):
     """Split rows into consecutive blocks holding at most ``limit`` entries each (a row larger
     than ``limit`` gets a block of its own). counts : int32/int64 (n,), read. Returns int64 bounds."""
