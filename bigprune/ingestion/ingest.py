@@ -69,7 +69,9 @@ def ingest(edges, nodes, store, features=None, memory_budget=DEFAULT_BUDGET, thr
     threads = set_threads(threads)
     store = store if isinstance(store, Store) else Store(store)
     if client is not None:
-        _check_store(client, store)
+        from ..cluster.connect import check_store
+
+        check_store(client, store.path)  # a folder it makes for its probe goes again
     regular_file(nodes, "--nodes")
     if features is not None:
         regular_file(features, "--features")
@@ -152,19 +154,6 @@ def _build_here(partitions, table, writer, plan, index_dtype, threads, budget, d
     if con is not None:
         con.close()
     return counts
-
-
-def _check_store(client, store):
-    """Refuse a store a worker cannot see; a store folder made only for the probe goes again, so
-    that a refused ingest leaves no store behind."""
-    from ..cluster.connect import check_store
-
-    fresh = not store.path.exists()
-    try:
-        check_store(client, store.path)
-    finally:
-        if fresh:
-            store.path.rmdir()
 
 
 def _renamed(columns):

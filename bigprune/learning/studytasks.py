@@ -35,7 +35,7 @@ def run_cells(client, todo, context, folder):
     try:
         return run_tasks(client, run_cell_task,
                          [(shared, cell, str(Path(folder) / f"{cell['name']}.json")) for cell in todo],
-                         desc="study", unit="cell")
+                         desc="study", unit="cell", exclusive=False)  # cells share a worker by plan
     finally:
         client.cancel([shared])
         client.run(_forget, run, on_error="ignore")  # the workers' memory is the next stage's again
