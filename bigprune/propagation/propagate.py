@@ -254,6 +254,11 @@ def _scales(indptr, chunks, norm):
     degree = np.zeros(indptr.shape[0] - 1, dtype=np.float64)
     for first, indices, weights in chunks():
         accumulate_rows(indptr, first, indices, weights, np.zeros(0), degree)
+    return scales_of(degree, norm)
+
+
+def scales_of(degree, norm):
+    """:func:`_scales` from each row's summed weights, float64 (n,), overwritten."""
     degree += 1.0  # the self loop
     if norm == "sym":
         np.sqrt(degree, out=degree)
