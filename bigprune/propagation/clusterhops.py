@@ -26,8 +26,9 @@ from ..cluster.tasks import run_tasks
 from ..common.arrayfile import NpyFile, edge_chunks
 from ..common.memory import chunk_ranges
 
-# Row blocks per worker for the in-memory hops and the row sums: enough that a lost worker's
-# share is small and the workers stay evenly busy.
+# Row blocks per worker for the in-memory hops and the degrees: enough that a lost worker's
+# share is small and the workers stay evenly busy. PageRank's product takes one per worker:
+# each of its tasks reads the whole share vector, and a step is short beside Dask's round trip.
 BLOCKS_PER_WORKER = 4
 
 
@@ -38,6 +39,7 @@ def run_on_cluster(client, graph, writer, n, d, nnz, hops, norm, storage, restri
     workers = max(1, len(client.scheduler_info()["workers"]))
     rows = max(1, -(-n // (BLOCKS_PER_WORKER * workers)))
     blocks = chunk_ranges(n, min(rows, chosen.block_rows) if not chosen.grid else rows)
+    rank_blocks = chunk_ranges(n, -(-n // workers))
     whole = max(1, nnz)  # one chunk: every row summed at once
     streamed = max(1, min(chosen.edge_rows, nnz)) if chosen.grid else whole  # edge_chunks' size
     counted = {"tasks": 0}
@@ -105,7 +107,7 @@ def run_on_cluster(client, graph, writer, n, d, nnz, hops, norm, storage, restri
         steps["done"] += 1
         shares = scratch / f"share_{steps['done']}.npy"
         np.save(shares, share)
-        product = _row_sums(mapped, graph, blocks, chunk, shares, scratch / f"product_{steps['done']}.npy",
+        product = _row_sums(mapped, graph, rank_blocks, chunk, shares, scratch / f"product_{steps['done']}.npy",
                             n, "pagerank step")
         with NpyFile(product) as summed:
             summed.read_into(0, out)
