@@ -8,7 +8,8 @@ in memory (the CSR and ``X_k`` whole, the output written one block of rows at a 
 grid partitioning (:mod:`bigprune.propagation.grid`) when they do not fit. With ``restrict`` only the rows
 that later stages read are computed (:mod:`bigprune.propagation.restrict`); the others hold NaN.
 Files are read and written with plain file I/O (:mod:`bigprune.common.arrayfile`), never mapped, so
-the peak RSS is what the plan counted.
+the peak RSS is what the plan counted. With a Dask client the same plan runs as tasks on its
+workers, with the same bytes (:mod:`bigprune.propagation.clusterhops`).
 """
 import operator
 import time
