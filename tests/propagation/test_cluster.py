@@ -70,14 +70,17 @@ def test_the_cluster_commits_the_single_server_bytes(tmp_path, monkeypatch, dask
     _assert_same_stage(one, spread)
 
 
-def _kill_at_hop_2(client, address, pid, ran):
-    """SIGKILL worker ``pid`` once the scheduler has given it a task of hop 2 (hop 1 is then
-    committed to staging, and the task's rows must be written again by another worker)."""
-    deadline = time.monotonic() + 120
-    while time.monotonic() < deadline:
-        if any("propagate-hop-2" in str(key) for key in client.processing().get(address, ())):
+# Tasks after hop 1 (its file is then complete in staging): their rows must be written again.
+LATER_TASKS = ("propagate-hop-2", "propagate-hop-3", "pagerank-step")
+
+
+def _kill_after_hop_1(client, address, pid, finished, ran):
+    """SIGKILL worker ``pid`` as soon as the scheduler has given it a task after hop 1."""
+    while not finished.is_set():
+        held = client.processing().get(address, ())
+        if any(name in str(key) for key in held for name in LATER_TASKS):
             os.kill(pid, signal.SIGKILL)
-            ran["killed"] = True
+            ran["killed"] = sorted(map(str, held))
             return
         time.sleep(0.002)
 
@@ -89,11 +92,15 @@ def test_a_worker_killed_during_propagate_still_gives_the_single_server_bytes(tm
     propagate(one, **options)
     with cluster("local:2") as client:
         address, victim = sorted(client.run(os.getpid).items())[0]
-        ran = {}
-        killer = threading.Thread(target=_kill_at_hop_2, args=(client, address, victim, ran))
+        finished, ran = threading.Event(), {}
+        killer = threading.Thread(target=_kill_after_hop_1,
+                                  args=(client, address, victim, finished, ran))
         killer.start()
-        propagate(spread, client=client, **options)
-        killer.join()
+        try:
+            propagate(spread, client=client, **options)
+        finally:
+            finished.set()
+            killer.join()
         assert ran.get("killed"), "the worker was not killed while the stage ran"
         assert victim not in client.run(os.getpid).values()
     _assert_same_stage(one, spread)
