@@ -9,7 +9,8 @@ The client makes the single server's plan from the per-worker budget and runs it
 - in memory: one task per row block per hop, each worker reading X_k once per hop;
 - grid: one task per output block to bucket its entries, then one per output block per hop;
 - PageRank: the product ``A @ share`` as one task per row block per step, into a scratch
-  file; the float64 reductions over whole vectors (the dangling mass, the L1 change) stay on
+  file (a worker keeps its blocks of the CSR between steps when the plan holds the CSR whole
+  for PageRank); the float64 reductions over whole vectors (the dangling mass, the L1 change) stay on
   the client, on its threads, as on one server with the same ``threads``.
 """
 import time
@@ -107,14 +108,18 @@ def run_on_cluster(client, graph, writer, n, d, nnz, hops, norm, storage, restri
         steps["done"] += 1
         shares = scratch / f"share_{steps['done']}.npy"
         np.save(shares, share)
-        product = _row_sums(mapped, graph, rank_blocks, chunk, shares, scratch / f"product_{steps['done']}.npy",
-                            n, "pagerank step")
+        product = _row_sums(mapped, graph, rank_blocks, chunk, shares,
+                            scratch / f"product_{steps['done']}.npy", n, "pagerank step",
+                            keep=chosen.pagerank_whole)
         with NpyFile(product) as summed:
             summed.read_into(0, out)
         shares.unlink()
         product.unlink()
 
-    scores, taken, change = _pagerank.iterate(_read(sums, n), gather)
+    try:
+        scores, taken, change = _pagerank.iterate(_read(sums, n), gather)
+    finally:
+        client.run(tasks.forget)  # the CSR blocks kept for PageRank's steps
     writer.save("pagerank", scores)
     info.update({"pagerank_seconds": round(time.perf_counter() - tic, 3), "pagerank_steps": taken,
                  "pagerank_change": change})
@@ -124,11 +129,11 @@ def run_on_cluster(client, graph, writer, n, d, nnz, hops, norm, storage, restri
     return info
 
 
-def _row_sums(mapped, graph, blocks, chunk, values, path, n, desc):
+def _row_sums(mapped, graph, blocks, chunk, values, path, n, desc, keep=False):
     """``tasks.row_sums`` over every row block into a new float64 (n,) file ``path``; the path."""
     created = np.lib.format.open_memmap(path, mode="w+", dtype=np.float64, shape=(n,))
     del created  # never touched through the map: the tasks write it
-    mapped(tasks.row_sums, [(graph, a, b, chunk, values, path) for a, b in blocks], desc)
+    mapped(tasks.row_sums, [(graph, a, b, chunk, values, path, keep) for a, b in blocks], desc)
     return path
 
 

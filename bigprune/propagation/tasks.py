@@ -18,8 +18,9 @@ from ..kernels.pagerank import accumulate_rows
 from ..kernels.spmm import balanced_bounds, scale_rows, smooth_rows
 from .propagate import TASKS_PER_THREAD
 
-# This worker process's inputs to the in-memory hop under way: X_k as smooth_rows reads it, the
-# left scales and the needed hops, read once per hop rather than once per task.
+# This worker process's inputs to the in-memory hop under way (X_k as smooth_rows reads it, the
+# left scales and the needed hops, read once per hop rather than once per task), and PageRank's
+# row blocks of the CSR when the plan holds the CSR whole (read once rather than once per step).
 _HELD = {}
 _HOLDING = threading.Lock()
 
@@ -52,7 +53,7 @@ def smooth_block(graph, source, target, scales, sym, through, level, a, b):
 
 
 def forget():
-    """Drop the hop inputs this worker holds (run on every worker after the last hop)."""
+    """Drop what this worker holds (run on every worker after the hops and after PageRank)."""
     with _HOLDING:
         _HELD.clear()
 
@@ -79,24 +80,51 @@ def grid_hop(one, source, target, scales, sym, through, level, edge_rows):
         _grid.hop_block(one, x, out, left, right, wanted, level, edge_rows, threads)
 
 
-def row_sums(graph, a, b, chunk, values, out):
+def row_sums(graph, a, b, chunk, values, out, keep=False):
     """Rows ``a..b`` of ``A @ values`` (of A's row sums when ``values`` is None), float64,
     written at rows a..b of file ``out``.
 
     Each row is summed as ``accumulate_rows`` sums it over ``edge_chunks`` of ``chunk``
     entries: in pieces cut where the CSR's entries cross a multiple of ``chunk``.
-    values : a float64 (n,) file or None.
+    values : a float64 (n,) file or None. keep : hold the block's entries in this worker for
+    the next call on the same rows (only when ``chunk`` covers the whole CSR: one piece).
     """
     set_threads(worker_threads())
-    with NpyFile(graph / "indptr.npy") as indptr_file:
-        indptr = indptr_file.read(a, b + 1)
-    lo, hi = int(indptr[0]), int(indptr[-1])
-    indptr -= lo
     gathered = np.zeros(0)
     if values is not None:
         with NpyFile(values) as shares:
             gathered = shares.read(0, shares.shape[0])
     sums = np.zeros(b - a)
+    if keep:
+        accumulate_rows(*_kept_block(graph, a, b), gathered, sums)
+    else:
+        _streamed_sums(graph, a, b, chunk, gathered, sums)
+    with NpyFile(out, writable=True) as target:
+        target.write(a, sums)
+
+
+def _kept_block(graph, a, b):
+    """Rows a..b of the CSR as ``accumulate_rows`` takes one chunk of it (rebased offsets, first
+    entry 0, indices, weights), read once by this worker process."""
+    key = (str(graph), a, b)
+    with _HOLDING:
+        blocks = _HELD.setdefault("blocks", {})
+        if key not in blocks:
+            with NpyFile(graph / "indptr.npy") as indptr_file:
+                indptr = indptr_file.read(a, b + 1)
+            lo, hi = int(indptr[0]), int(indptr[-1])
+            indptr -= lo
+            with NpyFile(graph / "indices.npy") as indices:
+                blocks[key] = (indptr, 0, indices.read(lo, hi), _read_weights(graph, lo, hi))
+        return blocks[key]
+
+
+def _streamed_sums(graph, a, b, chunk, gathered, sums):
+    """:func:`row_sums` reading the block's entries in pieces cut at multiples of ``chunk``."""
+    with NpyFile(graph / "indptr.npy") as indptr_file:
+        indptr = indptr_file.read(a, b + 1)
+    lo, hi = int(indptr[0]), int(indptr[-1])
+    indptr -= lo
     weighted = (graph / "weight.npy").exists()
     with NpyFile(graph / "indices.npy") as indices, \
             (NpyFile(graph / "weight.npy") if weighted else nullcontext()) as weights:
@@ -111,8 +139,6 @@ def row_sums(graph, a, b, chunk, values, out):
                 else weight_buffer
             accumulate_rows(indptr, first - lo, part, part_weights, gathered, sums)
             first = stop
-    with NpyFile(out, writable=True) as target:
-        target.write(a, sums)
 
 
 def _hop_inputs(source, scales, sym, through, threads):
