@@ -48,11 +48,29 @@ def power_iteration(indptr, chunks, damping=DAMPING, tol=TOL, max_iter=MAX_ITER)
     steps : int, the steps taken
     change : float, the L1 change of the last step (``>= tol`` only if ``max_iter`` ran out)
     """
-    n = indptr.shape[0] - 1
     none = np.zeros(0)
-    inv_strength = np.zeros(n)
+    strength = np.zeros(indptr.shape[0] - 1)
     for first, indices, weights in chunks():
-        accumulate_rows(indptr, first, indices, weights, none, inv_strength)
+        accumulate_rows(indptr, first, indices, weights, none, strength)
+
+    def gather(share, out):
+        out[:] = 0.0
+        for first, indices, weights in chunks():
+            accumulate_rows(indptr, first, indices, weights, share, out)
+
+    return iterate(strength, gather, damping, tol, max_iter)
+
+
+def iterate(strength, gather, damping=DAMPING, tol=TOL, max_iter=MAX_ITER):
+    """The power iteration itself, given each row's strength and the sparse product.
+
+    strength : float64 (n,), each row's summed weights; overwritten (it becomes their inverse).
+    gather : callable ``gather(share, out)`` filling float64 ``out`` (n,) with ``A @ share``,
+        each row summed as :func:`power_iteration` sums it.
+    Returns what :func:`power_iteration` returns.
+    """
+    n = strength.shape[0]
+    inv_strength = strength
     np.divide(1.0, inv_strength, out=inv_strength, where=inv_strength > 0)
     x = np.full(n, 1.0 / max(n, 1))
     x_new, share = np.empty(n), np.empty(n)
@@ -60,9 +78,7 @@ def power_iteration(indptr, chunks, damping=DAMPING, tol=TOL, max_iter=MAX_ITER)
     with progress(desc="pagerank", unit="step") as bar:
         while steps < max_iter and change >= tol:
             dangling = spread_share(x, inv_strength, share)
-            x_new[:] = 0.0
-            for first, indices, weights in chunks():
-                accumulate_rows(indptr, first, indices, weights, share, x_new)
+            gather(share, x_new)
             teleport = (damping * dangling + (1.0 - damping)) / max(n, 1)
             change = finish_step(x, damping, teleport, x_new)
             x, x_new = x_new, x

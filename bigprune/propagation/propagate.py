@@ -8,7 +8,8 @@ in memory (the CSR and ``X_k`` whole, the output written one block of rows at a 
 grid partitioning (:mod:`bigprune.propagation.grid`) when they do not fit. With ``restrict`` only the rows
 that later stages read are computed (:mod:`bigprune.propagation.restrict`); the others hold NaN.
 Files are read and written with plain file I/O (:mod:`bigprune.common.arrayfile`), never mapped, so
-the peak RSS is what the plan counted.
+the peak RSS is what the plan counted. With a Dask client the same plan runs as tasks on its
+workers, with the same bytes (:mod:`bigprune.propagation.clusterhops`).
 """
 import operator
 import time
@@ -37,7 +38,7 @@ TASKS_PER_THREAD = 8
 
 
 def propagate(store, hops=2, norm="sym", memory_budget=DEFAULT_BUDGET, threads=None,
-              dtype="float32", restrict=False):
+              dtype="float32", restrict=False, client=None):
     """Smooth the graph stage's features over ``hops`` hops and compute PageRank; commit both.
 
     Parameters
@@ -57,6 +58,10 @@ def propagate(store, hops=2, norm="sym", memory_budget=DEFAULT_BUDGET, threads=N
         splits need at the last hop (and, through them, at earlier hops); the other rows hold
         NaN and ``computed_through.npy`` (int8, n) gives the last hop each row was computed
         at. Off by default: ``select --targets unlabeled`` reads rows it leaves out.
+    client : distributed.Client, optional
+        Run the hops and PageRank as tasks on its workers (see
+        :mod:`bigprune.propagation.clusterhops`), with the bytes of the run without it; the
+        budget is then per worker process, and ``threads`` serves the client's PageRank sums.
 
     Returns
     -------
@@ -76,9 +81,13 @@ def propagate(store, hops=2, norm="sym", memory_budget=DEFAULT_BUDGET, threads=N
     budget = parse_size(memory_budget)
     threads = set_threads(threads)
     store.entry("graph")  # no store or no graph: say so before the lock would create the folder
+    if client is not None:
+        from ..cluster.connect import check_store
+
+        check_store(client, store.path)
     with store.locked():  # a writer, as ingest: a second run (or a job) on the store exits 4;
         # and a job's sweep must not take this run's directory
-        return _propagate(store, hops, norm, budget, threads, dtype, bool(restrict))
+        return _propagate(store, hops, norm, budget, threads, dtype, bool(restrict), client)
 
 
 def embedding(store, hop=None):
@@ -108,7 +117,7 @@ def _whole(value, option, least):
     return number
 
 
-def _propagate(store, hops, norm, budget, threads, dtype, restrict):
+def _propagate(store, hops, norm, budget, threads, dtype, restrict, client):
     started = time.perf_counter()
     graph_entry = store.entry("graph")
     graph = store.path / graph_entry["dir"]
@@ -125,8 +134,14 @@ def _propagate(store, hops, norm, budget, threads, dtype, restrict):
     storage = np.dtype(DTYPES[dtype])
     chosen = plan(n, d, nnz, index_bytes, weighted, storage.itemsize, restrict, budget)
     with store.begin("propagate", params=params, inputs=inputs) as writer:
-        run = _grid_hops if chosen.grid else _memory_hops
-        info = run(graph, writer, n, d, hops, norm, storage, restrict, chosen, threads)
+        if client is None:
+            run = _grid_hops if chosen.grid else _memory_hops
+            info = run(graph, writer, n, d, hops, norm, storage, restrict, chosen, threads)
+        else:
+            from .clusterhops import run_on_cluster
+
+            info = run_on_cluster(client, graph, writer, n, d, nnz, hops, norm, storage, restrict,
+                                  chosen)
         writer.info.update({"nodes": int(n), "dims": int(d), "nnz": int(nnz), "weighted": weighted,
                             "threads": threads, "way": "grid" if chosen.grid else "memory",
                             "plan": chosen._asdict(), **info})
@@ -150,11 +165,11 @@ def _memory_hops(graph, writer, n, d, hops, norm, storage, restrict, chosen, thr
     hop_seconds = []
     for hop in range(1, hops + 1):
         tic = time.perf_counter()
-        with NpyFile(_source_path(graph, writer, hop)) as source:
+        with NpyFile(source_path(graph, writer, hop)) as source:
             source.read_parallel(0, x, threads)  # X_k as stored, cast to float32 piece by piece
         if right is not None:  # scale X_k's rows once rather than each gathered row
             scale_rows(x, right)
-        target = _hop_file(writer, hop, n, d, storage)
+        target = hop_file(writer, hop, n, d, storage)
         with target, ThreadPoolExecutor(1) as writes, \
                 progress(total=n, desc=f"propagate hop {hop}/{hops}", unit="row") as bar:
             pending = [None, None]
@@ -172,7 +187,7 @@ def _memory_hops(graph, writer, n, d, hops, norm, storage, restrict, chosen, thr
                     job.result()
         hop_seconds.append(round(time.perf_counter() - tic, 3))
     del x, blocks, left, right
-    info = _finish(writer, hops, through, hop_seconds)
+    info = finish_hops(writer, hops, through, hop_seconds)
     del through  # committed: PageRank's phase does not hold it
     info.update(_pagerank_info(writer, indptr, chunks))
     info["block_rows"] = chosen.block_rows
@@ -199,14 +214,14 @@ def _grid_hops(graph, writer, n, d, hops, norm, storage, restrict, chosen, threa
         right = NpyFile(scratch / "left.npy") if sym else None
         for hop in range(1, hops + 1):
             tic = time.perf_counter()
-            with NpyFile(_source_path(graph, writer, hop)) as source, \
-                    _hop_file(writer, hop, n, d, storage) as target:
+            with NpyFile(source_path(graph, writer, hop)) as source, \
+                    hop_file(writer, hop, n, d, storage) as target:
                 _grid.hop(grid, source, target, left, right, through, hop, chosen.edge_rows, threads)
             hop_seconds.append(round(time.perf_counter() - tic, 3))
         left.close()
         if right is not None:
             right.close()
-        info = _finish(writer, hops, through, hop_seconds)
+        info = finish_hops(writer, hops, through, hop_seconds)
         del through  # committed: PageRank's phase does not hold it
         if chosen.pagerank_whole:  # PageRank alone fits with the CSR in memory
             chunks = edge_chunks(np.load(graph / "indices.npy"),
@@ -217,12 +232,12 @@ def _grid_hops(graph, writer, n, d, hops, norm, storage, restrict, chosen, threa
     return info
 
 
-def _source_path(graph, writer, hop):
+def source_path(graph, writer, hop):
     """Where X_{hop-1} is: the graph's features for the first hop, else the previous hop's file."""
     return graph / "features.npy" if hop == 1 else writer.path / f"hop_{hop - 1}.npy"
 
 
-def _hop_file(writer, hop, n, d, storage):
+def hop_file(writer, hop, n, d, storage):
     """The hop's output file, created at full size, open for writes by rows."""
     mapped = writer.array(f"hop_{hop}", (n, d), storage)
     path = mapped.filename
@@ -230,7 +245,7 @@ def _hop_file(writer, hop, n, d, storage):
     return NpyFile(path, writable=True)
 
 
-def _finish(writer, hops, through, hop_seconds):
+def finish_hops(writer, hops, through, hop_seconds):
     info = {"hop_seconds": hop_seconds, "restricted": through is not None}
     if through is not None:
         writer.save("computed_through", through)
@@ -254,6 +269,11 @@ def _scales(indptr, chunks, norm):
     degree = np.zeros(indptr.shape[0] - 1, dtype=np.float64)
     for first, indices, weights in chunks():
         accumulate_rows(indptr, first, indices, weights, np.zeros(0), degree)
+    return scales_of(degree, norm)
+
+
+def scales_of(degree, norm):
+    """:func:`_scales` from each row's summed weights, float64 (n,), overwritten."""
     degree += 1.0  # the self loop
     if norm == "sym":
         np.sqrt(degree, out=degree)
