@@ -201,9 +201,13 @@ def _report(rows, args, started):
         lines.append(f"{stage:<10} overhead local:1 / one server (1 thread) {l1 / one:.2f}x (goal <= 1.3); "
                      f"speed-up local:1 / local:2 {l1 / l2:.2f}x (goal >= 1.6)")
     digests = {r["mode"]: r["digests"] for r in rows if "digests" in r}
-    same = len({json.dumps(d, sort_keys=True) for d in digests.values()}) == 1
-    lines.append(f"committed stage files identical in every mode: {'yes' if same else 'NO'} "
-                 f"({len(next(iter(digests.values()), {}))} files)")
+    first = next(iter(digests.values()), {})
+    differ = {name: [mode for mode, found in digests.items() if found.get(name) != digest]
+              for name, digest in first.items()}
+    differ = {name: modes for name, modes in differ.items() if modes}
+    lines.append(f"committed stage files identical in every mode: {'NO' if differ else 'yes'} "
+                 f"({len(first)} files)" + "".join(f"; {name} differs in {', '.join(modes)}"
+                                                   for name, modes in differ.items()))
     lines += ["```", ""]
     return "\n".join(lines)
 

@@ -43,6 +43,12 @@ def accumulate_rows(indptr, first, indices, weights, values, acc):
         acc[r] += total
 
 
+# The vector sums (dangling mass, L1 change) add fixed blocks of rows, each in row order, then
+# the blocks in order: the same float64 result whatever the thread count (a parallel reduction's
+# order follows the threads), so one server at any --threads and a cluster's client agree.
+SUM_BLOCKS = 256
+
+
 @njit(parallel=True, cache=True)
 def spread_share(x, inv_strength, share):
     """share = x * inv_strength; returns the dangling mass (x summed over rows without out-weight).
@@ -50,11 +56,19 @@ def spread_share(x, inv_strength, share):
     x, inv_strength : float64 (n,), read (inv_strength 0 where a row has no out-weight).
     share : float64 (n,), filled.
     """
+    n = x.shape[0]
+    size = (n + SUM_BLOCKS - 1) // SUM_BLOCKS
+    partial = np.zeros(SUM_BLOCKS)
+    for b in prange(SUM_BLOCKS):
+        total = 0.0
+        for i in range(b * size, min(n, (b + 1) * size)):
+            share[i] = x[i] * inv_strength[i]
+            if inv_strength[i] == 0.0:
+                total += x[i]
+        partial[b] = total
     dangling = 0.0
-    for i in prange(x.shape[0]):
-        share[i] = x[i] * inv_strength[i]
-        if inv_strength[i] == 0.0:
-            dangling += x[i]
+    for b in range(SUM_BLOCKS):
+        dangling += partial[b]
     return dangling
 
 
@@ -64,9 +78,17 @@ def finish_step(x, damping, teleport, x_new):
 
     x : float64 (n,), read. x_new : float64 (n,), updated (it holds the gathered sums on entry).
     """
+    n = x.shape[0]
+    size = (n + SUM_BLOCKS - 1) // SUM_BLOCKS
+    partial = np.zeros(SUM_BLOCKS)
+    for b in prange(SUM_BLOCKS):
+        total = 0.0
+        for j in range(b * size, min(n, (b + 1) * size)):
+            value = damping * x_new[j] + teleport
+            x_new[j] = value
+            total += abs(value - x[j])
+        partial[b] = total
     change = 0.0
-    for j in prange(x.shape[0]):
-        value = damping * x_new[j] + teleport
-        x_new[j] = value
-        change += abs(value - x[j])
+    for b in range(SUM_BLOCKS):
+        change += partial[b]
     return change

@@ -118,3 +118,18 @@ def test_propagate_commits_networkx_pagerank(tmp_path, monkeypatch, weighted, bu
     # reference: networkx.pagerank on the same (float32-rounded) weights
     stored = sp.csr_matrix(sp.csr_matrix(adj, dtype=np.float32), dtype=np.float64)
     np.testing.assert_allclose(scores, _networkx(stored, weighted), rtol=0, atol=1e-8)
+
+
+def test_scores_are_the_same_bytes_at_any_thread_count():
+    # A cluster's client sums PageRank's vectors on its own threads; one server may run at any
+    # --threads: the float64 sums must not follow the thread count (a parallel reduction's order
+    # does). Reference: the same iteration run on one thread.
+    import numba
+
+    adj, weighted = random_symmetric(20000, 0.0003, np.random.default_rng(5)), False
+    runs = []
+    for threads in (1, numba.config.NUMBA_NUM_THREADS):
+        numba.set_num_threads(threads)
+        runs.append(power_iteration(*_csr(adj, weighted)))
+    scores = [run[0] for run in runs]
+    assert scores[0].tobytes() == scores[1].tobytes() and runs[0][1:] == runs[1][1:]
