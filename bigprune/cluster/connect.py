@@ -52,12 +52,25 @@ def cluster(address, option="--cluster"):
         except (OSError, TimeoutError) as exc:
             raise InputError(f"{option} {address}: no Dask scheduler answered there "
                              f"({type(exc).__name__}); start one with `dask scheduler`") from None
+    # The workers import while the client reads its inputs (held: a released future may be dropped).
+    warming = [client.submit(_warm_up, workers=[worker], pure=False, key=f"bigprune-warm-up-{worker}")
+               for worker in client.scheduler_info()["workers"]]
     try:
         yield client
     finally:
+        del warming
         client.close()
         if local is not None:
             local.close()
+
+
+def _warm_up():
+    """On a worker: import what the stages' tasks use (about 1.5 s for a new worker process)."""
+    import importlib
+
+    for name in ("bigprune.ingestion.tasks", "bigprune.propagation.tasks", "bigprune.selection.composable",
+                 "bigprune.learning.studytasks"):
+        importlib.import_module(name)
 
 
 def check_store(client, root, option="--cluster", what="the store"):
