@@ -149,9 +149,9 @@ def _is_worker(pid):
 def _measure(cmd):
     """Run ``cmd``: its wall time, its own peak RSS, and its workers' peak RSS."""
     peaks, stop = {}, threading.Event()
-    out, err = tempfile.TemporaryFile(mode="w+"), tempfile.TemporaryFile(mode="w+")
+    err = tempfile.TemporaryFile(mode="w+")
     tic = time.perf_counter()
-    child = subprocess.Popen(cmd, cwd=ROOT, stdout=out, stderr=err)
+    child = subprocess.Popen(cmd, cwd=ROOT, stdout=subprocess.DEVNULL, stderr=err)
 
     def sample():
         while not stop.wait(0.2):
@@ -166,20 +166,11 @@ def _measure(cmd):
     stop.set()
     sampler.join()
     child.returncode = os.waitstatus_to_exitcode(code)
-    out.seek(0)
     err.seek(0)
     last = err.read().strip().splitlines()[-1:]
     status = "ok" if child.returncode == 0 else f"exit {child.returncode}: {last}"
-    return {"wall": wall, "status": status, "seconds": _last_json(out.read()).get("seconds"),
-            "client_rss": usage.ru_maxrss * 1024, "worker_rss": sorted(v for v in peaks.values() if v)}
-
-
-def _last_json(text):
-    start = text.rfind("\n{")
-    try:
-        return json.loads(text[start + 1 if start >= 0 else 0:])
-    except ValueError:
-        return {}
+    return {"wall": wall, "status": status, "client_rss": usage.ru_maxrss * 1024,
+            "worker_rss": sorted(v for v in peaks.values() if v)}
 
 
 def _stage_digests(store):
