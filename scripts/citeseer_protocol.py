@@ -8,6 +8,7 @@
 
     python3 scripts/citeseer_protocol.py
     python3 scripts/citeseer_protocol.py --rules kmedian,random --picks 30,60 --seeds 5
+    python3 scripts/citeseer_protocol.py --rules kmedian,kcenter --cluster local:2   # select on Dask
 """
 import argparse
 import sys
@@ -34,7 +35,20 @@ def main():
                         help="comma-separated rules (default: random,kmedian,kmeans,kcenter)")
     parser.add_argument("--picks", default="30,60,120,240", help="pick counts (default 30,60,120,240)")
     parser.add_argument("--seeds", type=int, default=5, help="seeds for seeded rules (default 5)")
+    parser.add_argument("--cluster", default=None, metavar="ADDRESS",
+                        help="select through a Dask cluster (HOST:PORT or local:N)")
     args = parser.parse_args()
+    if args.cluster is None:
+        protocol(args, None)
+        return
+    from bigprune.cluster.connect import cluster
+
+    with cluster(args.cluster) as client:
+        protocol(args, client)
+
+
+def protocol(args, client):
+    """Both parts of the check; ``client``: select's Dask client, or None."""
     rules = args.rules.split(",")
     picks = [int(p) for p in args.picks.split(",")]
     with tempfile.TemporaryDirectory(prefix="citeseer-") as tmp:
@@ -54,11 +68,15 @@ def main():
                 started, scores = time.perf_counter(), []
                 for seed in range(args.seeds if rule in SEEDED else 1):
                     out = workdir / f"{rule}-{k}-{seed}.parquet"
-                    bigprune.select(store, rule, k, seed=seed, out=out)
+                    extra = {} if client is None else {"client": client}
+                    report = bigprune.select(store, rule, k, seed=seed, out=out, **extra)
+                    parts = report.get("distributed") or {}
                     scores.append(bigprune.train(store, nodes_from=out, answers=answers)["answers"]["accuracy"])
                 cells.append(f"{np.mean(scores):.3f}")
                 print(f"  {rule} at {k}: {np.round(scores, 3).tolist()} "
-                      f"({time.perf_counter() - started:.1f} s)", file=sys.stderr)
+                      f"({time.perf_counter() - started:.1f} s; mean distance {report['coverage']['mean']:.4f}, "
+                      f"radius {report['coverage']['radius']:.4f}; parts {parts.get('parts', 1)})",
+                      file=sys.stderr)
             print(f"| {k} | " + " | ".join(cells) + " |", flush=True)
 
 
