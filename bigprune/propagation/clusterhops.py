@@ -49,7 +49,7 @@ def run_on_cluster(client, graph, writer, n, d, nnz, hops, norm, storage, restri
         counted["tasks"] += len(pieces)
         return run_tasks(client, function, pieces, desc, unit)
 
-    sums = _row_sums(mapped, graph, blocks, streamed, None, scratch / "strength.npy", n,
+    sums = _row_sums(mapped, graph, blocks, streamed, scratch / "strength.npy", n,
                      "propagate degrees")
     left, right = scales_of(_read(sums, n), norm)
     sym = right is not None
@@ -100,21 +100,22 @@ def run_on_cluster(client, graph, writer, n, d, nnz, hops, norm, storage, restri
     tic = time.perf_counter()
     chunk = whole if chosen.pagerank_whole else streamed
     if chunk != streamed:
-        sums = _row_sums(mapped, graph, blocks, chunk, None, scratch / "strength_whole.npy", n,
+        sums = _row_sums(mapped, graph, blocks, chunk, scratch / "strength_whole.npy", n,
                          "pagerank degrees")
-    steps = {"done": 0}
+    # One share file and one product file, written over at each step: a step's tasks all finish
+    # before the next share is written, so a rerun task reads its own step's share.
+    shares, product = scratch / "share.npy", scratch / "product.npy"
+    for path in (shares, product):
+        created = np.lib.format.open_memmap(path, mode="w+", dtype=np.float64, shape=(n,))
+        del created  # never touched through the map: written with plain file I/O
 
     def gather(share, out):
-        steps["done"] += 1
-        shares = scratch / f"share_{steps['done']}.npy"
-        np.save(shares, share)
-        product = _row_sums(mapped, graph, rank_blocks, chunk, shares,
-                            scratch / f"product_{steps['done']}.npy", n, "pagerank step",
-                            keep=chosen.pagerank_whole)
+        with NpyFile(shares, writable=True) as written:
+            written.write(0, share)
+        mapped(tasks.row_sums, [(graph, a, b, chunk, shares, product, chosen.pagerank_whole)
+                                for a, b in rank_blocks], "pagerank step")
         with NpyFile(product) as summed:
             summed.read_into(0, out)
-        shares.unlink()
-        product.unlink()
 
     try:
         scores, taken, change = _pagerank.iterate(_read(sums, n), gather)
@@ -129,11 +130,12 @@ def run_on_cluster(client, graph, writer, n, d, nnz, hops, norm, storage, restri
     return info
 
 
-def _row_sums(mapped, graph, blocks, chunk, values, path, n, desc, keep=False):
-    """``tasks.row_sums`` over every row block into a new float64 (n,) file ``path``; the path."""
+def _row_sums(mapped, graph, blocks, chunk, path, n, desc):
+    """A's row sums by ``tasks.row_sums`` over every row block into a new float64 (n,) file
+    ``path``; the path."""
     created = np.lib.format.open_memmap(path, mode="w+", dtype=np.float64, shape=(n,))
     del created  # never touched through the map: the tasks write it
-    mapped(tasks.row_sums, [(graph, a, b, chunk, values, path, keep) for a, b in blocks], desc)
+    mapped(tasks.row_sums, [(graph, a, b, chunk, None, path) for a, b in blocks], desc)
     return path
 
 

@@ -46,7 +46,7 @@ def smooth_block(graph, source, target, scales, sym, through, level, a, b):
     weights = _read_weights(graph, lo, hi)
     bounds = np.empty(threads * TASKS_PER_THREAD + 1, dtype=np.int64)
     balanced_bounds(indptr, a, b, bounds.shape[0] - 1, bounds)
-    block = np.empty((b - a, x.shape[1]), dtype=np.float32)
+    block = _held("block", (b - a, x.shape[1]), np.float32)
     smooth_rows(indptr, columns, weights, left, x, needed, level, bounds, block)
     with NpyFile(target, writable=True) as out:
         out.write(a, block)
@@ -93,8 +93,9 @@ def row_sums(graph, a, b, chunk, values, out, keep=False):
     gathered = np.zeros(0)
     if values is not None:
         with NpyFile(values) as shares:
-            gathered = shares.read(0, shares.shape[0])
-    sums = np.zeros(b - a)
+            gathered = shares.read_into(0, _held("share", shares.shape, np.float64))
+    sums = _held("sums", (b - a,), np.float64)
+    sums[:] = 0.0
     if keep:
         accumulate_rows(*_kept_block(graph, a, b), gathered, sums)
     else:
@@ -147,15 +148,28 @@ def _hop_inputs(source, scales, sym, through, threads):
     key = (str(source), os.stat(source).st_mtime_ns, str(scales), sym, str(through))
     with _HOLDING:
         if _HELD.get("key") != key:
-            _HELD.clear()  # the previous hop's X first: never two at once
             with NpyFile(source) as stored:
-                x = stored.read_parallel(0, np.empty(stored.shape, dtype=np.float32), threads)
+                # the previous hop's X is read over: never two at once, and no page faulted anew
+                x = _held("x", stored.shape, np.float32)
+                stored.read_parallel(0, x, threads)
             left = np.load(scales)
             if sym:
                 scale_rows(x, left)
             needed = np.zeros(0, dtype=np.int8) if through is None else np.load(through)
             _HELD.update(key=key, inputs=(x, left, needed))
         return _HELD["inputs"]
+
+
+def _held(name, shape, dtype):
+    """This worker's buffer ``name``: the first ``shape[0]`` rows of one kept across tasks (and
+    hops, and PageRank's steps) until :func:`forget`, grown when too small. A stage's tasks run
+    one at a time per worker (``run_tasks``), so no two use it at once."""
+    buffer = _HELD.get(name)
+    if buffer is None or buffer.shape[0] < shape[0] or buffer.shape[1:] != tuple(shape[1:]) \
+            or buffer.dtype != dtype:
+        _HELD.pop(name, None)  # the old one goes before the new one exists
+        buffer = _HELD[name] = np.empty(shape, dtype=dtype)
+    return buffer[:shape[0]]
 
 
 def _read_weights(graph, lo, hi):
