@@ -40,8 +40,9 @@ def cluster(address, option="--cluster"):
 
     if kind == "local":
         # One thread per worker process: each task sets numba, FAISS and DuckDB to the worker's
-        # threads. Worker logs stay quiet: a task's error reaches the user once, from the client. No Dask memory limit: the stages keep within --memory-budget themselves, and
-        # Dask's own limit would pause or restart a worker that holds a large window on purpose.
+        # threads. Worker logs stay quiet: a task's error reaches the user once, from the client.
+        # No Dask memory limit: the stages keep within --memory-budget themselves, and Dask's
+        # own limit would pause or restart a worker that holds a large window on purpose.
         local = LocalCluster(n_workers=where, threads_per_worker=1, processes=True,
                              dashboard_address=None, memory_limit=0, silence_logs=logging.CRITICAL)
         client = Client(local, set_as_default=False)

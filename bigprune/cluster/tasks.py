@@ -44,9 +44,9 @@ def run_tasks(client, function, pieces, desc, unit="task", exclusive=True):
                 results[order[future.key]] = future.result()
                 bar.update(1)
     except KilledWorker:
-        raise BudgetError(f"{desc}: every worker that ran one of its tasks died (out of memory, or "
-                          "killed); check the workers' memory and logs, then rerun: the store keeps "
-                          "its last committed state") from None
+        raise BudgetError(f"{desc}: a task's worker died each time it ran the task (out of memory, "
+                          "or killed); check the workers' memory and logs, then rerun: the store "
+                          "keeps its last committed state") from None
     finally:
         client.cancel(futures)
     return results
