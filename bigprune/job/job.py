@@ -126,7 +126,7 @@ def run_job(path, dry_run=False, echo=print, cluster=None, client=None):
 
         parse_address(cluster)
     store = Store(job["store"])
-    clustered = bool(cluster or client or job["cluster"])
+    clustered = client is not None or (cluster or job["cluster"]) is not None
     if dry_run:
         steps = plan_job(job, clustered)
         for step in steps:
@@ -153,7 +153,8 @@ def run_job(path, dry_run=False, echo=print, cluster=None, client=None):
                 _check_selections(job, _store_nodes(store))
                 checked = True
             if "client" not in opts and (client is not None or address is not None):
-                opts["client"] = client or stack.enter_context(_cluster(address, cluster, job))
+                opts["client"] = client if client is not None else \
+                    stack.enter_context(_cluster(address, cluster, job))
             echo(f"run   {step['stage']:<40} {step['why']}")
             started = time.time()
             try:
