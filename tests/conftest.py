@@ -200,6 +200,15 @@ def citeseer(tmp_path_factory):
     return build
 
 
+@pytest.fixture
+def restore_threads():
+    """Every core for numba and FAISS again after the test (use with ``pytest.mark.usefixtures``)."""
+    yield
+    from bigprune.common.runtime import set_threads
+
+    set_threads(None)
+
+
 @pytest.fixture(scope="session")
 def dask_client():
     """A ``local:2`` cluster (two worker processes, one thread each) shared by the cluster tests."""

@@ -16,7 +16,6 @@ from bigprune.cli import main
 from bigprune.job.config import load_job
 from bigprune.common.errors import InputError
 from bigprune.propagation.propagate import propagate
-from bigprune.common.runtime import set_threads
 from bigprune.common.schema import NO_LABEL
 from bigprune.learning import recommend as recommend_module
 from bigprune.learning.proxy import L2_GRID
@@ -29,10 +28,7 @@ study = study_module.study
 BUDGETS = [0.02, 0.05, 0.1, 0.3, 1.0]
 
 
-@pytest.fixture(autouse=True)
-def restore_threads():
-    yield
-    set_threads(None)
+pytestmark = pytest.mark.usefixtures("restore_threads")  # tests here set numba's threads
 
 
 @pytest.fixture(scope="module")

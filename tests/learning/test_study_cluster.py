@@ -15,7 +15,6 @@ import numpy as np
 import pyarrow.parquet as pq
 import pytest
 
-from bigprune.common.runtime import set_threads
 from bigprune.common.schema import NO_LABEL
 from bigprune.common.store import Store
 from bigprune.learning.study import study
@@ -26,10 +25,7 @@ PLAN = {"budgets": [0.1, 0.3, 1.0], "strategies": ["kmedian", "random"], "repeat
 CELLS = 1 + 2 + 2 * 2  # the full pool; kmedian ignores the seed; random at two repeats
 
 
-@pytest.fixture(autouse=True)
-def restore_threads():
-    yield
-    set_threads(None)
+pytestmark = pytest.mark.usefixtures("restore_threads")  # tests here set numba's threads
 
 
 @pytest.fixture(scope="module")

@@ -14,10 +14,7 @@ from conftest import write_graph_store
 from conftest import add_propagate
 
 
-@pytest.fixture(autouse=True)
-def restore_threads():
-    yield
-    set_threads(None)
+pytestmark = pytest.mark.usefixtures("restore_threads")  # tests here set numba's threads
 
 
 @pytest.fixture

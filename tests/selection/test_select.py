@@ -20,7 +20,6 @@ from bigprune.common.errors import InputError
 from bigprune.selection.hardness import ddd_scores
 from bigprune.selection.influence import influence_scores
 from bigprune.selection.kcenter import greedy
-from bigprune.common.runtime import set_threads
 from bigprune.common.schema import NO_LABEL
 from bigprune.selection.select import parse_budget, select
 from bigprune.selection.strategies import STRATEGIES, largest_remainder
@@ -29,10 +28,7 @@ from conftest import add_propagate, write_graph_store
 select_module = importlib.import_module("bigprune.selection.select")  # the package's `select` is the function
 
 
-@pytest.fixture(autouse=True)
-def restore_threads():
-    yield
-    set_threads(None)
+pytestmark = pytest.mark.usefixtures("restore_threads")  # tests here set numba's threads
 
 
 @pytest.fixture

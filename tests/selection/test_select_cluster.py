@@ -11,7 +11,6 @@ import pytest
 from scipy.spatial.distance import cdist
 
 from bigprune import ingest, propagate
-from bigprune.common.runtime import set_threads
 from bigprune.scenario.scenario import generate
 from bigprune.selection.parts import count_parts
 from bigprune.selection.select import select
@@ -20,10 +19,7 @@ from conftest import add_propagate, random_symmetric, write_graph_store
 ROOT = Path(__file__).resolve().parents[2]
 
 
-@pytest.fixture(autouse=True)
-def restore_threads():
-    yield
-    set_threads(None)
+pytestmark = pytest.mark.usefixtures("restore_threads")  # tests here set numba's threads
 
 
 @pytest.fixture(scope="module")
