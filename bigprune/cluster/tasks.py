@@ -58,6 +58,11 @@ def _exclusive(function, *args):
         return function(*args)
 
 
+def worker_count(client):
+    """The worker processes the cluster has now (at least 1, for planning)."""
+    return max(1, len(client.scheduler_info()["workers"]))
+
+
 def worker_threads():
     """The threads this worker gives a task (its ``--nthreads``; 1 outside a worker)."""
     from distributed import get_worker

@@ -11,7 +11,7 @@ from typing import NamedTuple
 
 import numpy as np
 
-from ..cluster.tasks import run_tasks
+from ..cluster.tasks import run_tasks, worker_count
 from ..common.errors import BudgetError
 from ..common.memory import FIXED_OVERHEAD, MIB, format_size, working_memory
 from ..kernels.csr import block_bounds
@@ -82,7 +82,7 @@ def build_on_cluster(client, edges, table, index_dtype, writer, plan, budget, dr
     import pyarrow as pa
 
     scratch = writer.scratch()
-    workers = max(1, len(client.scheduler_info()["workers"]))
+    workers = worker_count(client)
     ids = IdMap(str(writer.path / "node_id.parquet"), None, plan.duckdb_bytes)
     if table.id_table is not None:
         np.save(scratch / "id-slots.npy", table.id_table.table)

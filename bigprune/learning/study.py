@@ -304,12 +304,13 @@ def _study(setup, out, tolerance, memory, threads, client=None):
                 bar.update(1)
         ran = {"workers": workers, "memory_per_worker": per_worker}
     else:
+        from ..cluster.tasks import worker_count
         from .studytasks import run_cells
 
         context.update(memory=memory, need=need)
         records = run_cells(client, todo, context, folder)
         done.update((cell["name"], record) for cell, record in zip(todo, records))
-        ran = {"workers": len(client.ncores()), "memory_per_worker": memory, "cluster": True}
+        ran = {"workers": worker_count(client), "memory_per_worker": memory, "cluster": True}
     rows = _table_rows(setup, done)
     summary = {"recommendation": recommend(rows, tolerance), "fits": fit_rules(rows),
                "cells": {"run": len(todo), "skipped": len(setup["cells"]) - len(todo), **ran},

@@ -23,7 +23,7 @@ from .grid import Grid, part
 from .hopplan import EDGE_BYTES
 from .propagate import finish_hops, hop_file, scales_of, source_path
 from .restrict import needed_through
-from ..cluster.tasks import run_tasks
+from ..cluster.tasks import run_tasks, worker_count
 from ..common.arrayfile import NpyFile, edge_chunks
 from ..common.memory import chunk_ranges
 
@@ -37,7 +37,7 @@ def run_on_cluster(client, graph, writer, n, d, nnz, hops, norm, storage, restri
     """The hops and PageRank of plan ``chosen`` as tasks; the stage's info (as on one server,
     with ``cluster``: the workers and the tasks run)."""
     scratch = writer.scratch()
-    workers = max(1, len(client.scheduler_info()["workers"]))
+    workers = worker_count(client)
     rows = max(1, -(-n // (BLOCKS_PER_WORKER * workers)))
     blocks = chunk_ranges(n, min(rows, chosen.block_rows) if not chosen.grid else rows)
     rank_blocks = chunk_ranges(n, -(-n // workers))

@@ -67,9 +67,12 @@ def cluster_rule(client, strategy, radius, memory, scratch, label_path):
     carries the report's ``"distributed"`` entry.
 
     memory : bytes each worker may hold. scratch : a directory in the store's staging area (the
-    one place every worker is known to see), for the pool's and the parts' target lists. label_path : the graph's ``label.npy``.
+    one place every worker is known to see), for the pool's and the parts' target lists.
+    label_path : the graph's ``label.npy``.
     """
-    workers = len(client.nthreads())
+    from ..cluster.tasks import worker_count
+
+    workers = worker_count(client)
 
     def rule(problem):
         reason = (ON_CLIENT.get(strategy, RADIUS) if not distributes(strategy, radius)
